@@ -1,0 +1,164 @@
+"""Reading the input tables (Parquet or CSV, by file extension) into typed polars frames.
+
+Only whole-input problems are raised here (unreadable file, missing column, wrong type, a
+null key in a column that names the portfolio); everything about the *values* is checked in
+:mod:`attribution.validate`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from attribution.errors import ReadError, SchemaError, examples
+
+DATE, FLOAT, TEXT = "date", "float", "text"
+
+#: The columns each input table must carry (DESIGN §2), in output order.
+TABLE_COLUMNS: dict[str, dict[str, str]] = {
+    "holdings": {"portfolio_id": TEXT, "as_of": DATE, "asset_class": TEXT, "weight": FLOAT},
+    "index_returns": {"period_end": DATE, "asset_class": TEXT, "return": FLOAT},
+    "policy": {
+        "portfolio_id": TEXT,
+        "asset_class": TEXT,
+        "weight": FLOAT,
+        "effective_from": DATE,
+    },
+    "riskfree": {"period_end": DATE, "return": FLOAT},
+    "segment_returns": {
+        "portfolio_id": TEXT,
+        "period_end": DATE,
+        "asset_class": TEXT,
+        "return": FLOAT,
+    },
+    "portfolio_returns": {"portfolio_id": TEXT, "period_end": DATE, "return": FLOAT},
+}
+REQUIRED_TABLES = ("holdings", "index_returns", "policy")
+OPTIONAL_TABLES = ("riskfree", "segment_returns", "portfolio_returns")
+
+TableSource = str | Path | pl.DataFrame | pl.LazyFrame | Any
+
+
+def read_table(source: TableSource, table: str) -> pl.DataFrame:
+    """Read one input table and give it the contract's column types.
+
+    ``source`` is a path (``.parquet``/``.pq`` or ``.csv``, chosen by extension) or an
+    in-memory frame (polars eager or lazy, pandas, or Arrow). Extra columns are dropped.
+    """
+    raw = _read_raw(source, table)
+    return coerce_schema(raw, table)
+
+
+def _read_raw(source: TableSource, table: str) -> pl.DataFrame:
+    if isinstance(source, pl.LazyFrame):
+        return source.collect()
+    if isinstance(source, pl.DataFrame):
+        return source
+    if isinstance(source, str | Path):
+        path = Path(source)
+        if not path.is_file():
+            msg = f"{table}: file {str(path)!r} does not exist or is not a file."
+            raise ReadError(msg)
+        suffix = path.suffix.lower()
+        try:
+            if suffix in (".parquet", ".pq"):
+                return pl.read_parquet(path)
+            if suffix == ".csv":
+                # Read every column as text and cast under our own rules, so a bad cell is
+                # reported with its column instead of surfacing as a parser error.
+                return pl.read_csv(path, infer_schema=False)
+        except Exception as exc:
+            reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+            msg = f"{table}: cannot read {str(path)!r} ({reason})."
+            raise ReadError(msg) from exc
+        msg = f"{table}: {str(path)!r} must end in .parquet, .pq or .csv (got {suffix or 'none'})."
+        raise ReadError(msg)
+    try:
+        frame = pl.from_arrow(source) if hasattr(source, "schema") else pl.from_pandas(source)
+    except Exception as exc:
+        msg = f"{table}: cannot convert an object of type {type(source).__name__} to a table."
+        raise ReadError(msg) from exc
+    if not isinstance(frame, pl.DataFrame):
+        msg = f"{table}: expected a table, got {type(source).__name__}."
+        raise ReadError(msg)
+    return frame
+
+
+def coerce_schema(frame: pl.DataFrame, table: str) -> pl.DataFrame:
+    """Check the table's columns and cast them to Date / Float64 / String.
+
+    Text dates must be ISO ``YYYY-MM-DD``; datetimes are truncated to their date. Integer
+    columns are accepted where a float is expected. A value that cannot be cast is a whole-
+    input :class:`SchemaError` naming the table, column and example values.
+    """
+    spec = TABLE_COLUMNS[table]
+    missing = [c for c in spec if c not in frame.columns]
+    if missing:
+        msg = (
+            f"{table}: missing column(s) {', '.join(map(repr, missing))}; "
+            f"expected columns {list(spec)}, found {frame.columns}."
+        )
+        raise SchemaError(msg)
+    out = frame.select(list(spec))
+    casts = [_cast_column(out, table, name, kind) for name, kind in spec.items()]
+    return out.with_columns(casts)
+
+
+def _cast_column(frame: pl.DataFrame, table: str, name: str, kind: str) -> pl.Expr:
+    dtype = frame.schema[name]
+    col = pl.col(name)
+    if kind == TEXT:
+        if dtype in (pl.String, pl.Categorical) or dtype.is_integer():
+            return col.cast(pl.String)
+        if isinstance(dtype, pl.Enum):
+            return col.cast(pl.String)
+        _wrong_type(table, name, dtype, "text (or integer ids)")
+    if kind == FLOAT:
+        if dtype.is_numeric():
+            return col.cast(pl.Float64)
+        if dtype == pl.String:
+            parsed = frame.select(col.str.strip_chars().cast(pl.Float64, strict=False))[name]
+            bad = frame.filter(parsed.is_null() & col.is_not_null() & (col.str.strip_chars() != ""))
+            if bad.height:
+                _bad_values(table, name, bad[name].to_list(), "a number")
+            return col.str.strip_chars().cast(pl.Float64, strict=False)
+        _wrong_type(table, name, dtype, "a number")
+    if dtype == pl.Date:
+        return col
+    if isinstance(dtype, pl.Datetime):
+        return col.dt.date()
+    if dtype == pl.String:
+        parsed = frame.select(col.str.strip_chars().str.to_date("%Y-%m-%d", strict=False))[name]
+        bad = frame.filter(parsed.is_null() & col.is_not_null())
+        if bad.height:
+            _bad_values(table, name, bad[name].to_list(), "an ISO date YYYY-MM-DD")
+        return col.str.strip_chars().str.to_date("%Y-%m-%d", strict=False)
+    _wrong_type(table, name, dtype, "a date")
+    raise AssertionError  # unreachable: _wrong_type raises
+
+
+def _wrong_type(table: str, name: str, dtype: object, expected: str) -> None:
+    msg = f"{table}: column {name!r} has type {dtype}; expected {expected}."
+    raise SchemaError(msg)
+
+
+def _bad_values(table: str, name: str, values: list[object], expected: str) -> None:
+    msg = f"{table}: column {name!r} has values that are not {expected}: {examples(values)}."
+    raise SchemaError(msg)
+
+
+def read_inputs(sources: Mapping[str, TableSource | None]) -> dict[str, pl.DataFrame | None]:
+    """Read every named table; optional tables may be ``None``. Required ones must be given."""
+    out: dict[str, pl.DataFrame | None] = {}
+    for table in REQUIRED_TABLES:
+        if sources.get(table) is None:
+            flag = "--" + table.replace("_", "-")
+            msg = f"{table}: this table is required (give it with {flag})."
+            raise ReadError(msg)
+    for table in (*REQUIRED_TABLES, *OPTIONAL_TABLES):
+        src = sources.get(table)
+        out[table] = None if src is None else read_table(src, table)
+    return out
