@@ -1,0 +1,329 @@
+"""The ``tiltaudit`` command line: run, validate, demo, simulate.
+
+Exit codes (DESIGN §2): 0 every portfolio ran (warnings allowed); 3 finished but at least
+one portfolio was skipped; 2 a whole-input or usage error, nothing written; 4 another run
+holds the output folder. Bad input is reported in one line on stderr, never a traceback.
+Flags override ``--config`` TOML values; the TOML keys are the long option names with
+underscores.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import functools
+import sys
+import tempfile
+import time
+import tomllib
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import click
+from click.core import ParameterSource
+from rich.console import Console
+from rich.table import Table
+
+from attribution import __version__
+from attribution.errors import OptionError, ReadError, TiltauditError
+from attribution.options import RunOptions
+from attribution.runner import RunResult, check_inputs, run_roster
+
+CAUTIONS = (
+    "Cautions: statistical evidence is not proof of skill; short records have little power; "
+    "past results do not guarantee future ones; this is not investment advice. Defer to the "
+    "plan's governance and to licensed professionals."
+)
+
+INPUT_FLAGS = (
+    ("holdings", "Holdings: portfolio_id, as_of, asset_class, weight (.parquet or .csv)."),
+    ("index_returns", "Asset-class index returns: period_end, asset_class, return."),
+    ("policy", "Policy mix: portfolio_id, asset_class, weight, effective_from."),
+    ("riskfree", "Riskless returns: period_end, return (needed for timing tests)."),
+    ("segment_returns", "Segment returns: portfolio_id, period_end, asset_class, return."),
+    ("portfolio_returns", "Reported returns: portfolio_id, period_end, return."),
+)
+OPTION_FLAGS: tuple[tuple[str, type | click.ParamType, str], ...] = (
+    ("static", str, "Static weight: window (default) | expanding | trailing:N."),
+    ("form", click.Choice(["bf", "bhb"]), "Decomposition form: bf (default) | bhb."),
+    (
+        "linking",
+        click.Choice(["carino", "menchero", "grap", "frongello"]),
+        "Linking method (default carino).",
+    ),
+    ("align", click.Choice(["none", "month", "quarter"]), "Map dates to period ends."),
+    ("weight_tolerance", float, "Allowed |Σ weights − 1| (default 1e-4)."),
+    ("cash_class", str, "Asset class whose index return is the riskless return."),
+    ("tests", click.Choice(["all", "exact", "none"]), "Timing tests to run (default all)."),
+    ("market", str, "Market for timing tests: policy (default) or an asset class."),
+    ("exposure", click.Choice(["beta", "risky-weight"]), "Exposure measure (default beta)."),
+    ("beta_window", str, "Class betas: full (default) or expanding:N."),
+    ("pcm_lag", int, "Lag of the portfolio-change measure in periods (default 1)."),
+    ("draws", int, "Resampling draws (default 999)."),
+    ("seed", int, "Seed of the resampling tests."),
+    ("reference_hit_rate", float, "Hit rate of the reference timer (default 0.60)."),
+    ("reference_power", float, "Power for the record-length verdict (default 0.50)."),
+)
+
+
+def _fail(exc: TiltauditError) -> None:
+    click.echo(f"tiltaudit: error: {exc}", err=True)
+    sys.exit(exc.exit_code)
+
+
+def handle_errors(func: Callable[..., Any]) -> Callable[..., Any]:
+    """Turn the package's exceptions into one stderr line and their exit code."""
+
+    @functools.wraps(func)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        try:
+            return func(*args, **kwargs)
+        except TiltauditError as exc:
+            _fail(exc)
+
+    return wrapper
+
+
+def input_options(func: Callable[..., Any]) -> Callable[..., Any]:
+    """The six input-table flags plus ``--config``."""
+    for name, text in reversed(INPUT_FLAGS):
+        flag = "--" + name.replace("_", "-")
+        func = click.option(flag, name, type=click.Path(dir_okay=False), help=text)(func)
+    return click.option(
+        "--config",
+        type=click.Path(dir_okay=False),
+        help="TOML file; keys are long option names with underscores. Flags win.",
+    )(func)
+
+
+def run_options(func: Callable[..., Any]) -> Callable[..., Any]:
+    """The method option flags (every one optional; the defaults live in RunOptions)."""
+    for name, kind, text in reversed(OPTION_FLAGS):
+        flag = "--" + name.replace("_", "-")
+        func = click.option(flag, name, type=kind, default=None, help=text)(func)
+    return func
+
+
+def _merged(ctx: click.Context, params: dict[str, Any]) -> dict[str, Any]:
+    """Command-line values, filled from the ``--config`` TOML where a flag was not given."""
+    config_path = params.pop("config", None)
+    if not config_path:
+        return params
+    path = Path(config_path)
+    try:
+        config = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError as exc:
+        msg = f"config: file {str(path)!r} does not exist."
+        raise ReadError(msg) from exc
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        msg = f"config: {str(path)!r} is not valid TOML ({exc})."
+        raise ReadError(msg) from exc
+    unknown = sorted(set(config) - set(params))
+    if unknown:
+        msg = f"config: unknown key(s) {unknown} in {str(path)!r}; known keys: {sorted(params)}."
+        raise OptionError(msg)
+    for key, value in config.items():
+        if ctx.get_parameter_source(key) in (ParameterSource.DEFAULT, None):
+            if key in dict(INPUT_FLAGS) or key == "out":
+                # Relative paths in a config file are read from the file's folder.
+                value = str((path.parent / str(value)).resolve())
+            params[key] = value
+    return params
+
+
+def _split(params: dict[str, Any]) -> tuple[dict[str, Any], RunOptions]:
+    sources = {name: params.get(name) for name, _ in INPUT_FLAGS}
+    opts = RunOptions.build(**{name: params.get(name) for name, _, _ in OPTION_FLAGS})
+    return sources, opts
+
+
+def _console(quiet: bool = False) -> Console:
+    return Console(stderr=False, quiet=quiet, highlight=False, soft_wrap=False)
+
+
+def _pct(value: Any) -> str:
+    return "—" if value is None else f"{100 * value:+.2f}%"
+
+
+def print_summary(result: RunResult, console: Console, out_dir: Path | None) -> None:
+    """A compact per-portfolio table: cumulative active return and its linked split."""
+    issues = result.data_issues
+    table = Table(title="tiltaudit — linked effects over each portfolio's record", box=None)
+    for col in ("portfolio", "periods", "source", "active", "static", "timing", "selection"):
+        table.add_column(col, justify="left" if col in ("portfolio", "source") else "right")
+    table.add_column("residual", justify="right")
+    table.add_column("issues", justify="right")
+    for row in result.summary.iter_rows(named=True):
+        pid = row["portfolio_id"]
+        n_issues = issues.filter(issues["portfolio_id"] == pid).height
+        table.add_row(
+            pid,
+            str(row["n_periods"]),
+            row["return_source"],
+            _pct(row["active_return"]),
+            _pct(row["static_allocation"]),
+            _pct(row["timing"]),
+            _pct(row["selection"]),
+            _pct(row["residual"]),
+            str(n_issues) if n_issues else "",
+        )
+    console.print(table)
+    for pid in result.skipped:
+        first = issues.filter((issues["portfolio_id"] == pid) & (issues["severity"] == "error"))
+        reason = first["message"][0] if first.height else "error"
+        console.print(f"skipped {pid}: {reason}")
+    n_warn = issues.filter(issues["severity"] == "warning").height
+    if n_warn:
+        console.print(f"{n_warn} warning(s) in data_issues.")
+    if out_dir is not None:
+        console.print(f"Results in {out_dir}")
+    console.print(CAUTIONS)
+
+
+def execute_run(
+    sources: dict[str, Any], options: RunOptions, out_dir: Path, *, started: float
+) -> RunResult:
+    """Run the roster and write its outputs atomically under the folder's lock."""
+    from attribution.outputs import output_lock, sha256_of, write_results
+
+    with output_lock(out_dir):
+        result = run_roster(sources, options)
+        inputs = {}
+        for name, src in sources.items():
+            if isinstance(src, str | Path):
+                path = Path(src)
+                inputs[name] = {"path": str(path.resolve()), "sha256": sha256_of(path)}
+        manifest = {
+            "tool": "tiltaudit",
+            "version": __version__,
+            "engine": "local",
+            "inputs": inputs,
+            "options": options.to_dict(),
+            "calendar": {
+                "first_period": str(result.calendar.period_ends[0]),
+                "last_period": str(result.calendar.period_ends[-1]),
+                "frequency": result.calendar.frequency,
+                "periods_per_year": result.calendar.periods_per_year,
+            },
+            "counts": {
+                "portfolios_run": result.summary.height,
+                "portfolios_skipped": len(result.skipped),
+                "issues_error": result.data_issues.filter(
+                    result.data_issues["severity"] == "error"
+                ).height,
+                "issues_warning": result.data_issues.filter(
+                    result.data_issues["severity"] == "warning"
+                ).height,
+            },
+            "exit_code": result.exit_code,
+            "finished_at": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
+        }
+        clock = time.perf_counter()
+        timings = dict(result.timings)
+        manifest["timings_seconds"] = timings
+        write_results(result.tables(), out_dir, manifest=manifest)
+        timings["write"] = time.perf_counter() - clock
+        timings["total"] = time.perf_counter() - started
+    return result
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="tiltaudit")
+def main() -> None:
+    """tiltaudit: static allocation, timing and selection, linked, with timing-skill tests."""
+
+
+@main.command()
+@input_options
+@click.option("--out", "out", type=click.Path(file_okay=False), help="Output folder.")
+@run_options
+@click.option("--quiet", is_flag=True, help="Print nothing but errors.")
+@click.pass_context
+@handle_errors
+def run(ctx: click.Context, quiet: bool, **params: Any) -> None:
+    """Evaluate a roster and write every table into --out."""
+    started = time.perf_counter()
+    params = _merged(ctx, params)
+    out = params.pop("out", None)
+    if not out:
+        raise OptionError("The 'out' option is required: give the output folder with --out.")
+    sources, options = _split(params)
+    result = execute_run(sources, options, Path(out), started=started)
+    print_summary(result, _console(quiet), Path(out).resolve())
+    sys.exit(result.exit_code)
+
+
+@main.command()
+@input_options
+@run_options
+@click.pass_context
+@handle_errors
+def validate(ctx: click.Context, **params: Any) -> None:
+    """Check the inputs only: list the data issues and exit with the code a run would give."""
+    params = _merged(ctx, params)
+    sources, options = _split(params)
+    checked = check_inputs(sources, options)
+    console = _console()
+    issues = checked.issues
+    if issues.height:
+        table = Table(title="data issues", box=None)
+        for col in ("portfolio_id", "severity", "code", "message"):
+            table.add_column(col)
+        for row in issues.sort("portfolio_id", "severity", "code").iter_rows(named=True):
+            table.add_row(row["portfolio_id"], row["severity"], row["code"], row["message"])
+        console.print(table)
+    console.print(
+        f"{len(checked.portfolios)} portfolio(s) would run, {len(checked.skipped)} would be "
+        f"skipped; {issues.height} issue(s)."
+    )
+    sys.exit(3 if checked.skipped or not checked.portfolios else 0)
+
+
+@main.command()
+@click.option(
+    "--out",
+    type=click.Path(file_okay=False),
+    default="tiltaudit-demo",
+    show_default=True,
+    help="Output folder.",
+)
+@click.option("--quiet", is_flag=True, help="Print nothing but errors.")
+@handle_errors
+def demo(out: str, quiet: bool) -> None:
+    """Run the bundled, invented demo roster end to end."""
+    from attribution.simulate import demo_roster, write_tables
+
+    started = time.perf_counter()
+    with tempfile.TemporaryDirectory(prefix="tiltaudit-demo-") as tmp:
+        paths = write_tables(demo_roster(), Path(tmp))
+        sources = {name: str(path) for name, path in paths.items()}
+        options = RunOptions.build()
+        result = execute_run(sources, options, Path(out), started=started)
+    print_summary(result, _console(quiet), Path(out).resolve())
+    sys.exit(result.exit_code)
+
+
+@main.command()
+@click.option("--out", required=True, type=click.Path(file_okay=False), help="Folder.")
+@click.option("--portfolios", "n_portfolios", type=click.IntRange(1), default=1000)
+@click.option("--classes", "n_classes", type=click.IntRange(2), default=12)
+@click.option("--periods", "n_periods", type=click.IntRange(2), default=240)
+@click.option("--seed", type=click.IntRange(0), default=0)
+@click.option("--segment-returns/--no-segment-returns", default=True)
+@click.option("--portfolio-returns/--no-portfolio-returns", default=True)
+@handle_errors
+def simulate(out: str, **params: Any) -> None:
+    """Write a random roster of any size (Parquet) for tests and benchmarks."""
+    from attribution.simulate import write_simulated_roster
+
+    paths = write_simulated_roster(Path(out), **params)
+    for name, path in paths.items():
+        click.echo(f"{name}: {path}")
+
+
+def entry() -> None:  # pragma: no cover - thin wrapper for python -m
+    main(prog_name="tiltaudit")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    entry()
