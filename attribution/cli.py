@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import Any
 
 import click
+import polars as pl
 from click.core import ParameterSource
 from rich.console import Console
 from rich.table import Table
@@ -27,7 +28,7 @@ from rich.table import Table
 from attribution import __version__
 from attribution.errors import OptionError, ReadError, TiltauditError
 from attribution.options import RunOptions
-from attribution.runner import RunResult, check_inputs, run_roster
+from attribution.runner import RunResult, run_roster
 
 CAUTIONS = (
     "Cautions: statistical evidence is not proof of skill; short records have little power; "
@@ -184,15 +185,23 @@ def execute_run(
     sources: dict[str, Any], options: RunOptions, out_dir: Path, *, started: float
 ) -> RunResult:
     """Run the roster and write its outputs atomically under the folder's lock."""
-    from attribution.outputs import output_lock, sha256_of, write_results
+    from attribution.decompose import EFFECTS_ORDER
+    from attribution.outputs import ParquetAppender, StagedOutput, output_lock, sha256_of
 
-    with output_lock(out_dir):
-        result = run_roster(sources, options)
+    with output_lock(out_dir), StagedOutput(out_dir) as staged:
+        effects = ParquetAppender(staged.path("effects.parquet"))
+        result = run_roster(sources, options, effects_sink=effects)
+        effects.close(empty_schema=dict.fromkeys(EFFECTS_ORDER, pl.Float64()))
         inputs = {}
         for name, src in sources.items():
             if isinstance(src, str | Path):
                 path = Path(src)
                 inputs[name] = {"path": str(path.resolve()), "sha256": sha256_of(path)}
+        issues = result.data_issues
+        tables = result.tables()
+        counts = {name: frame.height for name, frame in tables.items()}
+        counts["effects"] = effects.rows
+        timings = dict(result.timings)
         manifest = {
             "tool": "tiltaudit",
             "version": __version__,
@@ -208,22 +217,16 @@ def execute_run(
             "counts": {
                 "portfolios_run": result.summary.height,
                 "portfolios_skipped": len(result.skipped),
-                "issues_error": result.data_issues.filter(
-                    result.data_issues["severity"] == "error"
-                ).height,
-                "issues_warning": result.data_issues.filter(
-                    result.data_issues["severity"] == "warning"
-                ).height,
+                "issues_error": issues.filter(issues["severity"] == "error").height,
+                "issues_warning": issues.filter(issues["severity"] == "warning").height,
             },
             "exit_code": result.exit_code,
             "finished_at": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
+            "timings_seconds": timings,
         }
         clock = time.perf_counter()
-        timings = dict(result.timings)
-        manifest["timings_seconds"] = timings
-        write_results(result.tables(), out_dir, manifest=manifest)
-        timings["write"] = time.perf_counter() - clock
-        timings["total"] = time.perf_counter() - started
+        timings["write_started"] = clock - started
+        staged.commit(tables, manifest=manifest, row_counts=counts)
     return result
 
 
@@ -259,24 +262,28 @@ def run(ctx: click.Context, quiet: bool, **params: Any) -> None:
 @click.pass_context
 @handle_errors
 def validate(ctx: click.Context, **params: Any) -> None:
-    """Check the inputs only: list the data issues and exit with the code a run would give."""
+    """Check the inputs only: list the data issues and exit with the code a run would give.
+
+    Nothing is written. The portfolios are put through the same steps as a run (the
+    decomposition included, since some warnings only show there) and the results dropped.
+    """
     params = _merged(ctx, params)
     sources, options = _split(params)
-    checked = check_inputs(sources, options)
+    result = run_roster(sources, options, effects_sink=lambda frame: None)
     console = _console()
-    issues = checked.issues
+    issues = result.data_issues
     if issues.height:
         table = Table(title="data issues", box=None)
         for col in ("portfolio_id", "severity", "code", "message"):
             table.add_column(col)
-        for row in issues.sort("portfolio_id", "severity", "code").iter_rows(named=True):
+        for row in issues.iter_rows(named=True):
             table.add_row(row["portfolio_id"], row["severity"], row["code"], row["message"])
         console.print(table)
     console.print(
-        f"{len(checked.portfolios)} portfolio(s) would run, {len(checked.skipped)} would be "
+        f"{result.summary.height} portfolio(s) would run, {len(result.skipped)} would be "
         f"skipped; {issues.height} issue(s)."
     )
-    sys.exit(3 if checked.skipped or not checked.portfolios else 0)
+    sys.exit(result.exit_code)
 
 
 @main.command()

@@ -1,4 +1,4 @@
-"""Per-period decomposition of active return into static allocation, timing and selection.
+"""One shard of portfolios from validated rows to effects, per-period totals and issues.
 
 For portfolio p, period t, class i — actual weight w, policy weight q, static weight s,
 index return b, segment return r, policy return B_t = Σ_i q·b (DESIGN §3):
@@ -15,26 +15,33 @@ Brinson–Hood–Beebower form (``form="bhb"``; Brinson, Hood & Beebower 1986)::
     static (s − q) b,  timing (w − s) b,  selection q (r − b),  interaction (w − q)(r − b)
 
 Summed over classes both equal Σ w·r − B_t exactly because Σw = Σs = Σq = 1 (weights within
-the tolerance are rescaled to sum to exactly 1 so the identity holds to rounding).
-
-Between holdings dates the weights drift buy-and-hold: w_{t+1} = w_t (1 + r_t) / (1 + R_t)
-with r the segment return (index return where none), so after k periods
-w = w_0 Π(1 + r) / Σ_j w_{0j} Π(1 + r_j).
+the tolerance are rescaled to sum to exactly 1 so the identity holds to rounding). Between
+holdings dates the weights drift buy-and-hold (:func:`attribution.kernel.drift_weights`).
+The array work is in :mod:`attribution.kernel`; this module chooses windows and policies,
+calls it, and turns the arrays back into the contract's tables.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
 import polars as pl
 
 from attribution.calendar import Calendar
-from attribution.options import RunOptions, StaticWeight
-from attribution.validate import empty_issues, issue_rows
+from attribution.kernel import Effects, Panel, decompose_panel
+from attribution.linking import link_arrays
+from attribution.options import RunOptions
+from attribution.panel import Codes, build_panel, encode, make_codes
+from attribution.summary import LINKED_EFFECTS, PeriodArrays
+from attribution.validate import (
+    check_portfolio_tables,
+    empty_issues,
+    issue_rows,
+    skipped_portfolios,
+)
 
 PID = "portfolio_id"
-
-EFFECT_COLUMNS = ("static_allocation", "timing", "selection", "interaction")
 
 EFFECTS_ORDER = (
     "portfolio_id",
@@ -52,56 +59,84 @@ EFFECTS_ORDER = (
     "interaction",
     "is_drifted",
 )
+SERIES_ORDER = (
+    "portfolio_id",
+    "period_end",
+    "period_start",
+    "return_source",
+    "portfolio_return",
+    "computed_return",
+    "policy_return",
+    "active_return",
+    *LINKED_EFFECTS,
+    "is_drifted",
+    "cum_portfolio_return",
+    "cum_policy_return",
+    "cum_active_return",
+    *(f"cum_{e}" for e in LINKED_EFFECTS),
+)
 
 
 @dataclass(frozen=True)
-class Decomposition:
-    """Per class-period effects, per-period totals, and the warnings raised on the way."""
+class ShardResult:
+    """What one shard produces: tables, the per-period arrays, issues and who was skipped."""
 
     effects: pl.DataFrame
-    periods: pl.DataFrame
+    series: pl.DataFrame
+    periods: PeriodArrays
     issues: pl.DataFrame
+    skipped: tuple[str, ...]
 
 
 def holdings_windows(
-    holdings: pl.DataFrame, calendar: Calendar
+    holdings: pl.DataFrame, codes: Codes, calendar: Calendar
 ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Each portfolio's evaluation window and its holdings-gap warnings.
 
     Rule (our own convention, documented in the README): the window starts with the period
     that begins at the first holdings date. Every holdings date covers the periods up to the
     next one; the last covers the portfolio's usual spacing (the most common gap between its
-    holdings dates, 1 when it has one date), cut at the calendar's end. A gap longer than the
-    usual spacing is a ``holdings_gap`` warning: the weights drift through it.
-
-    Returns ``(windows, issues)``; ``windows`` has portfolio_id, first_index, last_index,
-    spacing.
+    holdings dates, the smallest on a tie, 1 when it has one date), cut at the calendar's
+    end. A gap longer than the usual spacing is a ``holdings_gap`` warning: the weights
+    drift through it. Returns ``(windows, issues)``; ``windows`` has ``_p``,
+    ``first_index``, ``last_index``, ``spacing``.
     """
-    cal = calendar.frame()
-    dates = (
-        holdings.select(PID, "as_of")
-        .unique()
-        .join(cal.select(pl.col("period_start").alias("as_of"), "period_index"), on="as_of")
-        .sort(PID, "period_index")
-        .with_columns(gap=pl.col("period_index").diff().over(PID))
+    n_p, n_t = len(codes.portfolio_ids), codes.n_periods
+    t_all = holdings["_t"].to_numpy()
+    inside = (t_all >= 0) & (t_all < n_t)
+    has = np.zeros((n_p, n_t), dtype=bool)
+    has[holdings["_p"].to_numpy()[inside], t_all[inside]] = True
+    p, t = np.nonzero(has)  # sorted by portfolio, then period
+    same = np.zeros(len(p), dtype=bool)
+    same[1:] = p[1:] == p[:-1]
+    gap = np.zeros(len(p), dtype=np.int64)
+    gap[1:] = t[1:] - t[:-1]
+    counts = np.bincount(p[same] * (n_t + 1) + gap[same], minlength=n_p * (n_t + 1))
+    counts = counts.reshape(n_p, n_t + 1)
+    spacing = np.where(counts.any(axis=1), np.argmax(counts, axis=1), 1)
+    present = has.any(axis=1)
+    first = np.argmax(has, axis=1)
+    last_holding = n_t - 1 - np.argmax(has[:, ::-1], axis=1)
+    last = np.minimum(last_holding + spacing - 1, n_t - 1)
+    rows = np.flatnonzero(present)
+    windows = pl.DataFrame(
+        {
+            "_p": rows.astype(np.int64),
+            "first_index": first[rows].astype(np.int64),
+            "last_index": last[rows].astype(np.int64),
+            "spacing": spacing[rows].astype(np.int64),
+        }
     )
-    spacing = dates.group_by(PID).agg(
-        first_index=pl.col("period_index").min(),
-        last_holding=pl.col("period_index").max(),
-        spacing=pl.col("gap").drop_nulls().mode().min().fill_null(1).cast(pl.Int32),
-    )
-    windows = spacing.select(
-        PID,
-        pl.col("first_index").cast(pl.Int32),
-        pl.min_horizontal(
-            pl.col("last_holding") + pl.col("spacing") - 1, pl.lit(calendar.n_periods - 1)
-        )
-        .cast(pl.Int32)
-        .alias("last_index"),
-        "spacing",
-    ).sort(PID)
-    gaps = dates.join(spacing.select(PID, "spacing"), on=PID).filter(
-        pl.col("gap") > pl.col("spacing")
+    wide = same & (gap > spacing[p])
+    starts = calendar.frame()["period_start"]
+    ids = pl.Series(list(codes.portfolio_ids), dtype=pl.String)
+    gaps = pl.DataFrame(
+        {
+            PID: ids.gather(p[wide]),
+            "as_of": starts.gather(t[wide]),
+            "gap": gap[wide],
+            "spacing": spacing[p[wide]],
+        }
     )
     issues = issue_rows(
         gaps,
@@ -120,43 +155,55 @@ def holdings_windows(
 
 
 def policy_assignment(
-    windows: pl.DataFrame, policy: pl.DataFrame, calendar: Calendar
-) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """The policy row set in force for every period of every window, and the gaps.
+    windows: pl.DataFrame, policy: pl.DataFrame, codes: Codes
+) -> tuple[np.ndarray, np.ndarray, pl.DataFrame]:
+    """The policy row set in force for every period of every window.
 
     A row set applies to every period that starts on or after its ``effective_from``, until
-    the next set (DESIGN §2). Returns ``(periods, issues)``: ``periods`` has portfolio_id,
-    period_index, period_start, period_end, effective_from; ``issues`` holds one
-    ``no_policy_in_force`` error per portfolio with a period no set covers.
+    the next set (DESIGN §2). Returns ``(policy_set, policy_weights, issues)``:
+    ``policy_set`` (P, T) indexes the rows of ``policy_weights`` (sets × K, each row rescaled
+    to sum to 1), −1 where no set is in force; ``issues`` holds one ``no_policy_in_force``
+    error per portfolio with an uncovered period.
     """
-    cal = calendar.frame()
-    periods = (
-        windows.select(
-            PID,
-            pl.int_ranges("first_index", pl.col("last_index") + 1, dtype=pl.Int32).alias(
-                "period_index"
-            ),
-        )
-        .explode("period_index")
-        .join(cal, on="period_index")
+    n_p, n_t, n_k = len(codes.portfolio_ids), codes.n_periods, len(codes.classes)
+    policy = policy.with_columns(_day=pl.col("effective_from").cast(pl.Int32).cast(pl.Int64))
+    sets = policy.select("_p", "_day").unique().sort("_p", "_day").with_row_index("_set")
+    rows = policy.join(sets, on=["_p", "_day"])
+    weights = np.zeros((sets.height, n_k))
+    np.add.at(weights, (rows["_set"].to_numpy(), rows["_k"].to_numpy()), rows["weight"].to_numpy())
+    totals = weights.sum(axis=1, keepdims=True)
+    weights = np.divide(weights, totals, out=np.zeros_like(weights), where=totals != 0)
+
+    offset = np.int64(1) << 32
+    set_keys = sets["_p"].to_numpy() * (offset << 1) + sets["_day"].to_numpy() + offset
+    p_idx = np.arange(n_p)[:, None]
+    query = p_idx * (offset << 1) + codes.start_days[None, :] + offset
+    found = np.searchsorted(set_keys, query.ravel(), side="right").reshape(n_p, n_t) - 1
+    set_p = sets["_p"].to_numpy()
+    valid = (
+        (found >= 0) & (set_p[np.maximum(found, 0)] == p_idx)
+        if sets.height
+        else (np.zeros((n_p, n_t), dtype=bool))
     )
-    sets = policy.select(PID, "effective_from").unique().sort("effective_from")
-    periods = periods.sort("period_start").join_asof(
-        sets,
-        left_on="period_start",
-        right_on="effective_from",
-        by=PID,
-        strategy="backward",
-        check_sortedness=False,  # sorted by period_start just above, hence within each group
-    )
-    uncovered = (
-        periods.filter(pl.col("effective_from").is_null())
-        .group_by(PID)
-        .agg(pl.col("period_start").min(), pl.len().alias("n"))
-        .sort(PID)
+    first = np.full(n_p, n_t)
+    last = np.full(n_p, -1)
+    first[windows["_p"].to_numpy()] = windows["first_index"].to_numpy()
+    last[windows["_p"].to_numpy()] = windows["last_index"].to_numpy()
+    t_range = np.arange(n_t)
+    active = (t_range[None, :] >= first[:, None]) & (t_range[None, :] <= last[:, None])
+    uncovered = active & ~valid
+    bad_p = np.flatnonzero(uncovered.any(axis=1))
+    starts = pl.Series(codes.start_days[np.argmax(uncovered[bad_p], axis=1)]).cast(pl.Date)
+    bad = pl.DataFrame(
+        {
+            PID: [codes.portfolio_ids[p] for p in bad_p],
+            "n": uncovered[bad_p].sum(axis=1),
+            "period_start": starts,
+        },
+        schema={PID: pl.String, "n": pl.Int64, "period_start": pl.Date},
     )
     issues = issue_rows(
-        uncovered,
+        bad,
         code="no_policy_in_force",
         message=pl.format(
             "policy: portfolio {}: no policy row set is in force for {} period(s), the first "
@@ -166,144 +213,190 @@ def policy_assignment(
             pl.col("period_start").cast(pl.String),
         ),
     )
-    return periods.sort(PID, "period_index"), issues
+    return np.where(valid & active, found, -1), weights, issues
 
 
-def _static_weight(static: StaticWeight) -> pl.Expr:
-    w = pl.col("weight")
-    group = [PID, "asset_class"]
-    if static.mode == "window":
-        return w.mean().over(group)
-    if static.mode == "expanding":
-        n = w.cum_count().over(group)
-        earlier = (w.cum_sum().over(group) - w) / (n - 1)
-        return pl.when(n > 1).then(earlier).otherwise(w)
-    assert static.periods is not None
-    trailing = w.rolling_mean(window_size=static.periods, min_samples=1).shift(1).over(group)
-    return trailing.fill_null(w)
+def _drop(frame: pl.DataFrame | None, codes_out: list[int]) -> pl.DataFrame | None:
+    if frame is None or not codes_out:
+        return frame
+    return frame.filter(~pl.col("_p").is_in(codes_out))
 
 
-def decompose(
+def run_shard(
     tables: dict[str, pl.DataFrame | None],
-    periods: pl.DataFrame,
+    calendar: Calendar,
+    index_returns: pl.DataFrame,
     options: RunOptions,
-) -> Decomposition:
-    """Build the dense portfolio × period × class panel and compute every effect.
+) -> ShardResult:
+    """Validate, decompose and tabulate one shard of portfolios.
 
-    ``periods`` comes from :func:`policy_assignment` for portfolios without errors; the
-    tables are the validated inputs restricted to those portfolios.
+    ``tables`` hold the shard's rows of holdings, policy, segment_returns and
+    portfolio_returns (already typed); rows of portfolios without holdings must have been
+    removed (they are reported once for the roster by the runner).
     """
     holdings = tables["holdings"]
-    policy = tables["policy"]
-    index_returns = tables["index_returns"]
     assert holdings is not None
+    policy = tables["policy"]
     assert policy is not None
-    assert index_returns is not None
-    segments = tables.get("segment_returns")
-    reported = tables.get("portfolio_returns")
+    classes = sorted(index_returns["asset_class"].unique().to_list())
+    ids = sorted(holdings[PID].unique().to_list())
+    codes = make_codes(ids, classes, calendar)
+    enc: dict[str, pl.DataFrame | None] = {
+        "holdings": encode(holdings, codes, date="as_of", holdings=True),
+        "policy": encode(policy, codes, date=None, holdings=False),
+        "segment_returns": None,
+        "portfolio_returns": None,
+    }
+    for name in ("segment_returns", "portfolio_returns"):
+        frame = tables.get(name)
+        if frame is not None:
+            enc[name] = encode(frame, codes, date="period_end", holdings=False)
+    issues = check_portfolio_tables(enc, calendar, codes, weight_tolerance=options.weight_tolerance)
+    skipped = set(skipped_portfolios(issues).to_list())
+    out = [codes.portfolio_ids.index(p) for p in skipped]
+    enc = {name: _drop(frame, out) for name, frame in enc.items()}
+    h_enc = enc["holdings"]
+    p_enc = enc["policy"]
+    assert h_enc is not None
+    assert p_enc is not None
+    windows, gap_issues = holdings_windows(h_enc, codes, calendar)
+    policy_set, policy_weights, policy_issues = policy_assignment(windows, p_enc, codes)
+    no_policy = policy_issues[PID].to_list()
+    if no_policy:
+        skipped |= set(no_policy)
+        out = [codes.portfolio_ids.index(p) for p in no_policy]
+        windows = windows.filter(~pl.col("_p").is_in(out))
+        enc = {name: _drop(frame, out) for name, frame in enc.items()}
+    index_enc = encode(index_returns, codes, date="period_end", holdings=False)
+    panel = build_panel(
+        codes,
+        holdings=enc["holdings"],  # type: ignore[arg-type]
+        policy=enc["policy"],  # type: ignore[arg-type]
+        index_returns=index_enc,
+        segments=enc["segment_returns"],
+        reported=enc["portfolio_returns"],
+        windows=windows,
+        policy_set=policy_set,
+        policy_weights=policy_weights,
+    )
+    eff = decompose_panel(panel, static=options.static, form=options.form)
+    periods = _period_arrays(panel, eff, calendar)
+    series = _series_frame(panel, eff, periods, calendar, options)
+    effects = _effects_frame(panel, eff, calendar)
+    more = _kernel_issues(panel, eff, calendar)
+    all_issues = pl.concat([empty_issues(), issues, gap_issues, policy_issues, *more])
+    return ShardResult(
+        effects=effects,
+        series=series,
+        periods=periods,
+        issues=all_issues,
+        skipped=tuple(sorted(skipped)),
+    )
 
-    held = (
-        holdings.join(
-            periods.select(PID, pl.col("period_start").alias("as_of"), "period_index"),
-            on=[PID, "as_of"],
-        )
-        .with_columns(pl.col("weight") / pl.col("weight").sum().over(PID, "period_index"))
-        .select(PID, "period_index", "asset_class", pl.col("weight").alias("held_weight"))
-    )
-    holding_periods = held.select(PID, "period_index").unique().with_columns(is_holding=True)
-    classes = pl.concat(
-        [held.select(PID, "asset_class"), policy.select(PID, "asset_class")]
-    ).unique()
-    policy_norm = policy.with_columns(
-        pl.col("weight") / pl.col("weight").sum().over(PID, "effective_from")
-    ).select(PID, "effective_from", "asset_class", pl.col("weight").alias("policy_weight"))
 
-    panel = (
-        periods.join(classes, on=PID)
-        .join(holding_periods, on=[PID, "period_index"], how="left")
-        .join(held, on=[PID, "period_index", "asset_class"], how="left")
-        .join(
-            index_returns.rename({"return": "index_return"}),
-            on=["period_end", "asset_class"],
-            how="left",
-        )
-        .join(policy_norm, on=[PID, "effective_from", "asset_class"], how="left")
+def _return_source(panel: Panel) -> np.ndarray:
+    return np.where(
+        panel.has_reported, "reported", np.where(panel.has_segments, "segments", "index")
     )
-    has_segments = pl.lit(False)
-    if segments is not None:
-        panel = panel.join(
-            segments.rename({"return": "segment_return"}),
-            on=[PID, "period_end", "asset_class"],
-            how="left",
-        )
-        seg_ids = segments[PID].unique()
-        has_segments = pl.col(PID).is_in(seg_ids)
-    else:
-        panel = panel.with_columns(segment_return=pl.lit(None, dtype=pl.Float64))
 
-    group = [PID, "asset_class"]
-    panel = (
-        panel.with_columns(
-            pl.col("is_holding").fill_null(False),
-            pl.col("policy_weight").fill_null(0.0),
-            has_segments.alias("has_segments"),
-        )
-        .with_columns(
-            held_weight=pl.when(pl.col("is_holding"))
-            .then(pl.col("held_weight").fill_null(0.0))
-            .otherwise(None),
-            return_used=pl.coalesce("segment_return", "index_return"),
-        )
-        .sort(PID, "asset_class", "period_index")
-        .with_columns(block=pl.col("is_holding").cast(pl.Int32).cum_sum().over(group))
-        .with_columns(
-            start_weight=pl.col("held_weight").forward_fill().over(group),
-            growth=(1.0 + pl.col("return_used"))
-            .shift(1)
-            .fill_null(1.0)
-            .cum_prod()
-            .over([*group, "block"]),
-        )
-        .with_columns(grown=pl.col("start_weight") * pl.col("growth"))
-        .with_columns(
-            weight=pl.col("grown") / pl.col("grown").sum().over(PID, "period_index"),
-            is_drifted=~pl.col("is_holding"),
-        )
-    )
-    # On a holdings date the weight is the reported one as it stands (already rescaled to
-    # sum to 1); dividing the grown weights by their sum would only add rounding there.
-    panel = panel.with_columns(
-        weight=pl.when(pl.col("is_holding")).then(pl.col("held_weight")).otherwise(pl.col("weight"))
-    )
-    panel = panel.with_columns(static_weight=_static_weight(options.static)).with_columns(
-        policy_return=(pl.col("policy_weight") * pl.col("index_return"))
-        .sum()
-        .over(PID, "period_index")
-    )
-    w, s, q = pl.col("weight"), pl.col("static_weight"), pl.col("policy_weight")
-    b, r = pl.col("index_return"), pl.col("return_used")
-    # Selection is unknown where the portfolio reports segment returns but not this one and
-    # the class was held; it is known to be 0 where the weight is 0.
-    unknown = ~pl.col("has_segments") | (pl.col("segment_return").is_null() & (w != 0.0))
-    if options.form == "bf":
-        rel = b - pl.col("policy_return")
-        panel = panel.with_columns(
-            static_allocation=(s - q) * rel,
-            timing=(w - s) * rel,
-            selection=pl.when(unknown).then(None).otherwise(w * (r - b)),
-            interaction=pl.lit(None, dtype=pl.Float64),
-        )
-    else:
-        panel = panel.with_columns(
-            static_allocation=(s - q) * b,
-            timing=(w - s) * b,
-            selection=pl.when(unknown).then(None).otherwise(q * (r - b)),
-            interaction=pl.when(unknown).then(None).otherwise((w - q) * (r - b)),
-        )
-    panel = panel.sort(PID, "period_index", "asset_class")
 
-    missing = panel.filter(pl.col("has_segments") & pl.col("segment_return").is_null() & (w != 0.0))
-    issues = [
+def _period_arrays(panel: Panel, eff: Effects, calendar: Calendar) -> PeriodArrays:
+    stacked = np.stack([eff.totals[name] for name in LINKED_EFFECTS], axis=2)
+    return PeriodArrays(
+        portfolio_ids=panel.portfolio_ids,
+        period_ends=calendar.frame()["period_end"],
+        active=panel.active,
+        portfolio_return=eff.portfolio_return,
+        policy_return=eff.policy_return,
+        effects=stacked,
+        is_drifted=panel.active & ~panel.holding,
+        n_selection_missing=eff.n_selection_missing,
+        return_source=_return_source(panel),
+    )
+
+
+def _floats(values: np.ndarray) -> pl.Series:
+    return pl.Series(values, dtype=pl.Float64).fill_nan(None)
+
+
+def _series_frame(
+    panel: Panel, eff: Effects, periods: PeriodArrays, calendar: Calendar, options: RunOptions
+) -> pl.DataFrame:
+    """The per-period table: returns, effects and the cumulative linked effects."""
+    known = ~np.isnan(periods.effects)
+    linked, rc, bc = link_arrays(
+        periods.portfolio_return,
+        periods.policy_return,
+        np.where(known, periods.effects, 0.0),
+        periods.active,
+        options.linking,
+    )
+    linked = np.where(known, linked, np.nan)
+    p, t = np.nonzero(panel.active)
+    cal = calendar.frame()
+    ids = pl.Series(list(panel.portfolio_ids), dtype=pl.String)
+    data: dict[str, pl.Series] = {
+        PID: ids.gather(p),
+        "period_end": cal["period_end"].gather(t),
+        "period_start": cal["period_start"].gather(t),
+        "return_source": pl.Series(_return_source(panel)[p], dtype=pl.String),
+        "portfolio_return": _floats(eff.portfolio_return[p, t]),
+        "computed_return": _floats(eff.computed_return[p, t]),
+        "policy_return": _floats(eff.policy_return[p, t]),
+        "active_return": _floats(eff.portfolio_return[p, t] - eff.policy_return[p, t]),
+    }
+    for j, name in enumerate(LINKED_EFFECTS):
+        data[name] = _floats(periods.effects[p, t, j])
+    data["is_drifted"] = pl.Series(periods.is_drifted[p, t], dtype=pl.Boolean)
+    data["cum_portfolio_return"] = _floats(rc[p, t])
+    data["cum_policy_return"] = _floats(bc[p, t])
+    data["cum_active_return"] = _floats(rc[p, t] - bc[p, t])
+    for j, name in enumerate(LINKED_EFFECTS):
+        data[f"cum_{name}"] = _floats(linked[p, t, j])
+    return pl.DataFrame(data).select(SERIES_ORDER)
+
+
+def _effects_frame(panel: Panel, eff: Effects, calendar: Calendar) -> pl.DataFrame:
+    """The class-level table for every class in the portfolio's universe (held or policy)."""
+    mask = panel.active[:, :, None] & panel.universe[:, None, :]
+    p, t, k = np.nonzero(mask)
+    ids = pl.Series(list(panel.portfolio_ids), dtype=pl.String)
+    classes = pl.Series(list(panel.classes), dtype=pl.String)
+    index = np.broadcast_to(panel.index[None, :, :], mask.shape)
+    data = {
+        PID: ids.gather(p),
+        "period_end": calendar.frame()["period_end"].gather(t),
+        "asset_class": classes.gather(k),
+        "weight": _floats(eff.weight[mask]),
+        "static_weight": _floats(eff.static_weight[mask]),
+        "policy_weight": _floats(panel.policy[mask]),
+        "index_return": _floats(index[mask]),
+        "segment_return": _floats(panel.segment[mask]),
+        "policy_return": _floats(eff.policy_return[p, t]),
+        "static_allocation": _floats(eff.static_allocation[mask]),
+        "timing": _floats(eff.timing[mask]),
+        "selection": _floats(eff.selection[mask]),
+        "interaction": _floats(eff.interaction[mask]),
+        "is_drifted": pl.Series(~panel.holding[p, t], dtype=pl.Boolean),
+    }
+    return pl.DataFrame(data).select(EFFECTS_ORDER)
+
+
+def _kernel_issues(panel: Panel, eff: Effects, calendar: Calendar) -> list[pl.DataFrame]:
+    cal = calendar.frame()
+    ids = pl.Series(list(panel.portfolio_ids), dtype=pl.String)
+    p, t, k = np.nonzero(eff.segment_missing)
+    missing = pl.DataFrame(
+        {
+            PID: ids.gather(p),
+            "period_end": cal["period_end"].gather(t),
+            "asset_class": pl.Series(list(panel.classes), dtype=pl.String).gather(k),
+            "weight": eff.weight[p, t, k],
+        }
+    )
+    rp, rt = np.nonzero(panel.has_reported[:, None] & np.isnan(panel.reported) & panel.active)
+    no_report = pl.DataFrame({PID: ids.gather(rp), "period_end": cal["period_end"].gather(rt)})
+    return [
         issue_rows(
             missing,
             code="segment_return_missing",
@@ -313,88 +406,20 @@ def decompose(
                 PID,
                 "asset_class",
                 pl.col("period_end").cast(pl.String),
-                w.round(6).cast(pl.String),
+                pl.col("weight").round(6).cast(pl.String),
             ),
             period="period_end",
             asset_class="asset_class",
-        )
-    ]
-    period_totals = _period_totals(panel, options)
-    period_totals, reported_issues = _attach_reported(period_totals, reported)
-    issues.append(reported_issues)
-    effects = panel.select(EFFECTS_ORDER)
-    return Decomposition(
-        effects=effects,
-        periods=period_totals,
-        issues=pl.concat([empty_issues(), *issues]),
-    )
-
-
-def _period_totals(panel: pl.DataFrame, options: RunOptions) -> pl.DataFrame:
-    """Sum the class effects per portfolio-period, with the computed return Σ w·r."""
-    has_seg = pl.col("has_segments").first()
-    totals = panel.group_by(PID, "period_index", maintain_order=True).agg(
-        pl.col("period_start").first(),
-        pl.col("period_end").first(),
-        (pl.col("weight") * pl.col("return_used")).sum().alias("computed_return"),
-        pl.col("policy_return").first(),
-        pl.col("static_allocation").sum(),
-        pl.col("timing").sum(),
-        pl.when(has_seg).then(pl.col("selection").sum()).otherwise(None).alias("selection"),
-        pl.when(has_seg & pl.lit(options.form == "bhb"))
-        .then(pl.col("interaction").sum())
-        .otherwise(None)
-        .alias("interaction"),
-        pl.col("is_drifted").first(),
-        has_seg.alias("has_segments"),
-        (pl.col("selection").is_null() & pl.col("has_segments"))
-        .sum()
-        .cast(pl.Int64)
-        .alias("n_selection_missing"),
-    )
-    return totals
-
-
-def _attach_reported(
-    totals: pl.DataFrame, reported: pl.DataFrame | None
-) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Choose the return that is linked: reported where given, else the computed one.
-
-    ``residual`` = reported − computed (fees, cash flows, intra-period trading), linked as
-    its own effect; 0 where the computed return is used.
-    """
-    if reported is None:
-        totals = totals.with_columns(reported_return=pl.lit(None, dtype=pl.Float64))
-        has_rep = pl.lit(False)
-    else:
-        totals = totals.join(
-            reported.select(PID, "period_end", pl.col("return").alias("reported_return")),
-            on=[PID, "period_end"],
-            how="left",
-        )
-        has_rep = pl.col(PID).is_in(reported[PID].unique())
-    totals = totals.with_columns(has_reported=has_rep)
-    gaps = totals.filter(pl.col("has_reported") & pl.col("reported_return").is_null())
-    issues = issue_rows(
-        gaps,
-        code="reported_return_missing",
-        message=pl.format(
-            "portfolio_returns: portfolio {} has no reported return for the period ending {}; "
-            "the computed return is used for it.",
-            PID,
-            pl.col("period_end").cast(pl.String),
         ),
-        period="period_end",
-    )
-    totals = totals.with_columns(
-        portfolio_return=pl.coalesce("reported_return", "computed_return"),
-        return_source=pl.when(pl.col("has_reported"))
-        .then(pl.lit("reported"))
-        .when(pl.col("has_segments"))
-        .then(pl.lit("segments"))
-        .otherwise(pl.lit("index")),
-    ).with_columns(
-        residual=pl.col("portfolio_return") - pl.col("computed_return"),
-        active_return=pl.col("portfolio_return") - pl.col("policy_return"),
-    )
-    return totals.sort(PID, "period_index"), issues
+        issue_rows(
+            no_report,
+            code="reported_return_missing",
+            message=pl.format(
+                "portfolio_returns: portfolio {} has no reported return for the period ending "
+                "{}; the computed return is used for it.",
+                PID,
+                pl.col("period_end").cast(pl.String),
+            ),
+            period="period_end",
+        ),
+    ]

@@ -33,27 +33,73 @@ from attribution._typing import Linking
 _SMALL = 1e-9
 
 
-def log_ratio_coefficient(a: pl.Expr, b: pl.Expr) -> pl.Expr:
+def log_ratio_coefficient(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Cariño's k(a, b) = [ln(1+a) − ln(1+b)] / (a − b), with its limit 1/(1+b) at a = b.
 
     Written as log1p(x)/x / (1+b) with x = (a − b)/(1+b), which keeps full precision when a
     and b are close (a second-order series below |x| < 1e-9).
     """
+    a = np.asarray(a, dtype=float)
+    b = np.asarray(b, dtype=float)
     x = (a - b) / (1.0 + b)
-    ratio = pl.when(x.abs() < _SMALL).then(1.0 - x / 2.0 + x * x / 3.0).otherwise(x.log1p() / x)
+    small = np.abs(x) < _SMALL
+    safe = np.where(small, 1.0, x)
+    ratio = np.where(small, 1.0 - x / 2.0 + x * x / 3.0, np.log1p(safe) / safe)
     return ratio / (1.0 + b)
 
 
-def _expm1(x: pl.Expr) -> pl.Expr:
-    # polars has no expm1; exp(x) - 1 would lose the digits that matter near R = B.
-    return x.map_batches(np.expm1, return_dtype=pl.Float64, is_elementwise=True)
-
-
-def _menchero_m(rc: pl.Expr, bc: pl.Expr, n: pl.Expr) -> pl.Expr:
-    """Menchero's M written with expm1 so it is exact near R = B (limit (1+B)^{(T−1)/T})."""
-    lam = ((rc - bc) / (1.0 + bc)).log1p()
-    shape = pl.when(lam.abs() < 1e-300).then(1.0).otherwise(_expm1(lam) / (n * _expm1(lam / n)))
+def _menchero_m(rc: np.ndarray, bc: np.ndarray, n: np.ndarray) -> np.ndarray:
+    """Menchero's M written with expm1 so it stays exact near R = B (limit (1+B)^{(T−1)/T})."""
+    n = np.maximum(n, 1.0)
+    lam = np.log1p((rc - bc) / (1.0 + bc))
+    tiny = np.abs(lam) < 1e-300
+    safe = np.where(tiny, 1.0, lam)
+    shape = np.where(tiny, 1.0, np.expm1(safe) / (n * np.expm1(safe / n)))
     return shape * (1.0 + bc) ** ((n - 1.0) / n)
+
+
+def link_arrays(
+    portfolio_return: np.ndarray,
+    policy_return: np.ndarray,
+    effects: np.ndarray,
+    active: np.ndarray,
+    method: Linking,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Cumulative linked effects for arrays shaped (G, T) and (G, T, J).
+
+    Periods outside ``active`` must carry zero returns and zero effects: they then leave
+    every cumulative value unchanged. Returns ``(linked, cum_R, cum_B)`` with ``linked``
+    shaped like ``effects``; ``linked[:, t, j]`` is effect j linked from each group's first
+    active period through t.
+    """
+    r = np.where(active, portfolio_return, 0.0)
+    b = np.where(active, policy_return, 0.0)
+    e = np.where(active[:, :, None], effects, 0.0)
+    grown_r = np.cumprod(1.0 + r, axis=1)
+    grown_b = np.cumprod(1.0 + b, axis=1)
+    rc, bc = grown_r - 1.0, grown_b - 1.0
+    if method == "carino":
+        k_t = log_ratio_coefficient(r, b)
+        k = log_ratio_coefficient(rc, bc)
+        linked = np.cumsum(k_t[:, :, None] * e, axis=1) / k[:, :, None]
+    elif method == "menchero":
+        n = np.cumsum(active, axis=1).astype(float)
+        m = _menchero_m(rc, bc, n)
+        d = r - b
+        s1 = np.cumsum(d, axis=1)
+        s2 = np.cumsum(d * d, axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            c = np.where(s2 > 0, (rc - bc - m * s1) / np.where(s2 > 0, s2, 1.0), 0.0)
+        linked = m[:, :, None] * np.cumsum(e, axis=1) + c[:, :, None] * np.cumsum(
+            d[:, :, None] * e, axis=1
+        )
+    elif method in ("grap", "frongello"):
+        before = grown_r / (1.0 + r)
+        linked = grown_b[:, :, None] * np.cumsum(e * (before / grown_b)[:, :, None], axis=1)
+    else:  # pragma: no cover - options are validated upstream
+        msg = f"unknown linking method {method!r}"
+        raise ValueError(msg)
+    return linked, rc, bc
 
 
 def link_cumulative(
@@ -64,57 +110,48 @@ def link_cumulative(
     keys: Sequence[str] = ("portfolio_id",),
     order: str = "period_index",
 ) -> pl.DataFrame:
-    """Add ``cum_<effect>`` (the effect linked from the group's first period through this one)
-    and ``cum_portfolio_return``, ``cum_policy_return``, ``cum_active_return``.
+    """Frame form of :func:`link_arrays`: add ``cum_<effect>`` and the cumulative returns.
 
     ``frame`` has one row per group × period with ``portfolio_return`` (R_t),
-    ``policy_return`` (B_t) and the effect columns; a null effect stays null in its
-    cumulative column (treated as 0 in the sums, which is exact when a whole column is null).
-    The effects must add up to R_t − B_t per period for the totals to reconcile.
+    ``policy_return`` (B_t) and the effect columns. A null effect stays null in its
+    cumulative column and counts as 0 in the sums (exact when a whole column is null).
+    Adds ``cum_portfolio_return``, ``cum_policy_return`` and ``cum_active_return``.
     """
     keys = list(keys)
     frame = frame.sort([*keys, order])
-    r, b = pl.col("portfolio_return"), pl.col("policy_return")
-    grown_r = (1.0 + r).cum_prod().over(keys)
-    grown_b = (1.0 + b).cum_prod().over(keys)
-    work = frame.with_columns(
-        _P=grown_r,
-        _Q=grown_b,
-        _n=pl.int_range(1, pl.len() + 1).cast(pl.Float64).over(keys),
-        _d=r - b,
-    ).with_columns(_rc=pl.col("_P") - 1.0, _bc=pl.col("_Q") - 1.0)
-    rc, bc, d = pl.col("_rc"), pl.col("_bc"), pl.col("_d")
-
-    def e(name: str) -> pl.Expr:
-        return pl.col(name).fill_null(0.0)
-
-    if method == "carino":
-        k_t = log_ratio_coefficient(r, b)
-        k = log_ratio_coefficient(rc, bc)
-        linked = {name: (k_t * e(name)).cum_sum().over(keys) / k for name in effects}
-    elif method == "menchero":
-        m = _menchero_m(rc, bc, pl.col("_n"))
-        s1 = d.cum_sum().over(keys)
-        s2 = (d * d).cum_sum().over(keys)
-        c = pl.when(s2 > 0).then((rc - bc - m * s1) / s2).otherwise(0.0)
-        linked = {
-            name: m * e(name).cum_sum().over(keys) + c * (d * e(name)).cum_sum().over(keys)
-            for name in effects
-        }
-    elif method in ("grap", "frongello"):
-        p_before = pl.col("_P") / (1.0 + r)
-        q = pl.col("_Q")
-        linked = {name: q * (e(name) * p_before / q).cum_sum().over(keys) for name in effects}
-    else:  # pragma: no cover - options are validated upstream
-        msg = f"unknown linking method {method!r}"
-        raise ValueError(msg)
-    out = work.with_columns(
-        **{
-            f"cum_{name}": pl.when(pl.col(name).is_null()).then(None).otherwise(expr)
-            for name, expr in linked.items()
-        },
-        cum_portfolio_return=rc,
-        cum_policy_return=bc,
-        cum_active_return=rc - bc,
+    if frame.height == 0:
+        return frame.with_columns(
+            *(pl.lit(None, dtype=pl.Float64).alias(f"cum_{e}") for e in effects),
+            *(
+                pl.lit(None, dtype=pl.Float64).alias(c)
+                for c in ("cum_portfolio_return", "cum_policy_return", "cum_active_return")
+            ),
+        )
+    pos = frame.select(
+        g=pl.struct(keys).rank("dense").cast(pl.Int64) - 1,
+        t=pl.int_range(pl.len()).over(keys),
     )
-    return out.drop("_P", "_Q", "_n", "_d", "_rc", "_bc")
+    g = pos["g"].to_numpy()
+    t = pos["t"].to_numpy()
+    shape = (int(g.max()) + 1, int(t.max()) + 1)
+    active = np.zeros(shape, dtype=bool)
+    active[g, t] = True
+    r = np.zeros(shape)
+    b = np.zeros(shape)
+    r[g, t] = frame["portfolio_return"].to_numpy()
+    b[g, t] = frame["policy_return"].to_numpy()
+    e = np.zeros((*shape, len(effects)))
+    for j, name in enumerate(effects):
+        e[g, t, j] = frame[name].fill_null(0.0).to_numpy()
+    linked, rc, bc = link_arrays(r, b, e, active, method)
+    cols = {f"cum_{name}": pl.Series(linked[g, t, j]) for j, name in enumerate(effects)}
+    out = frame.with_columns(
+        **{
+            name: pl.when(pl.col(src).is_null()).then(None).otherwise(series)
+            for (name, series), src in zip(cols.items(), effects, strict=True)
+        },
+        cum_portfolio_return=pl.Series(rc[g, t]),
+        cum_policy_return=pl.Series(bc[g, t]),
+        cum_active_return=pl.Series(rc[g, t] - bc[g, t]),
+    )
+    return out

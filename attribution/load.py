@@ -162,3 +162,79 @@ def read_inputs(sources: Mapping[str, TableSource | None]) -> dict[str, pl.DataF
         src = sources.get(table)
         out[table] = None if src is None else read_table(src, table)
     return out
+
+
+class TableReader:
+    """One input table, read shard by shard: a Parquet/CSV file scanned lazily with a filter
+    on ``portfolio_id`` (row-group statistics skip what a shard does not need), or an
+    in-memory frame filtered in memory."""
+
+    def __init__(self, source: TableSource, table: str) -> None:
+        self.table = table
+        self._lazy: pl.LazyFrame
+        if isinstance(source, str | Path):
+            path = Path(source)
+            if not path.is_file():
+                msg = f"{table}: file {str(path)!r} does not exist or is not a file."
+                raise ReadError(msg)
+            suffix = path.suffix.lower()
+            if suffix in (".parquet", ".pq"):
+                self._lazy = pl.scan_parquet(path)
+            elif suffix == ".csv":
+                self._lazy = pl.scan_csv(path, infer_schema=False)
+            else:
+                msg = (
+                    f"{table}: {str(path)!r} must end in .parquet, .pq or .csv "
+                    f"(got {suffix or 'none'})."
+                )
+                raise ReadError(msg)
+            self._where = str(path)
+        else:
+            self._lazy = _read_raw(source, table).lazy()
+            self._where = "the table given"
+        try:
+            columns = self._lazy.collect_schema().names()
+        except Exception as exc:
+            reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+            msg = f"{table}: cannot read {self._where!r} ({reason})."
+            raise ReadError(msg) from exc
+        spec = TABLE_COLUMNS[table]
+        missing = [c for c in spec if c not in columns]
+        if missing:
+            msg = (
+                f"{table}: missing column(s) {', '.join(map(repr, missing))}; "
+                f"expected columns {list(spec)}, found {columns}."
+            )
+            raise SchemaError(msg)
+        self._lazy = self._lazy.select(list(spec))
+
+    def _collect(self, lazy: pl.LazyFrame) -> pl.DataFrame:
+        try:
+            return lazy.collect()
+        except Exception as exc:
+            reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+            msg = f"{self.table}: cannot read {self._where!r} ({reason})."
+            raise ReadError(msg) from exc
+
+    def portfolio_ids(self) -> pl.Series:
+        """The distinct portfolio ids of the table, as text (nulls dropped)."""
+        ids = self._collect(
+            self._lazy.select(pl.col("portfolio_id").cast(pl.String)).unique()
+        )["portfolio_id"]
+        if ids.null_count():
+            msg = (
+                f"{self.table}: column 'portfolio_id' is empty in some rows; every row must "
+                "name its portfolio."
+            )
+            raise SchemaError(msg)
+        return ids.sort()
+
+    def read_all(self) -> pl.DataFrame:
+        """The whole table, typed."""
+        return coerce_schema(self._collect(self._lazy), self.table)
+
+    def read_shard(self, ids: list[str]) -> pl.DataFrame:
+        """The typed rows of the given portfolios."""
+        wanted = pl.Series(ids, dtype=pl.String).implode()
+        lazy = self._lazy.filter(pl.col("portfolio_id").cast(pl.String).is_in(wanted))
+        return coerce_schema(self._collect(lazy), self.table)

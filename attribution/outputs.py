@@ -21,6 +21,7 @@ from typing import Any
 
 import duckdb
 import polars as pl
+import pyarrow.parquet as pq
 
 from attribution.errors import OutputLockedError
 
@@ -112,48 +113,90 @@ def write_duckdb(db_path: Path, parquet: Mapping[str, Path]) -> list[str]:
     return views
 
 
-def write_results(
-    tables: Mapping[str, pl.DataFrame],
-    out_dir: Path,
-    *,
-    manifest: dict[str, Any],
-    extra_files: Mapping[str, bytes] | None = None,
-) -> Path:
-    """Write the tables as Parquet and DuckDB plus ``manifest.json`` into ``out_dir``.
+class ParquetAppender:
+    """Append polars frames to one Parquet file (one row group per frame or more)."""
 
-    The caller holds :func:`output_lock`. ``extra_files`` (e.g. the report) are written as
-    they are. Returns the folder.
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self._writer: pq.ParquetWriter | None = None
+        self.rows = 0
+
+    def __call__(self, frame: pl.DataFrame) -> None:
+        table = frame.to_arrow()
+        if self._writer is None:
+            self._writer = pq.ParquetWriter(self.path, table.schema, compression="zstd")
+        self._writer.write_table(table, row_group_size=1 << 20)
+        self.rows += frame.height
+
+    def close(self, empty_schema: dict[str, pl.DataType] | None = None) -> None:
+        if self._writer is not None:
+            self._writer.close()
+        elif empty_schema is not None:
+            pl.DataFrame(schema=empty_schema).write_parquet(self.path)
+
+
+class StagedOutput:
+    """An output folder written atomically: a hidden staging folder, swapped in at the end.
+
+    Use as a context manager under :func:`output_lock`; call :meth:`commit` once everything
+    is written. Leaving the block without committing (an error, a kill) leaves the previous
+    contents of the folder as they were.
     """
-    out_dir = out_dir.resolve()
-    _, staging, previous = _siblings(out_dir)
-    if staging.exists():
-        shutil.rmtree(staging)
-    staging.mkdir(parents=True)
-    try:
-        paths = {}
+
+    def __init__(self, out_dir: Path) -> None:
+        self.out_dir = out_dir.resolve()
+        _, self.staging, self._previous = _siblings(self.out_dir)
+        self._committed = False
+
+    def __enter__(self) -> StagedOutput:
+        if self.staging.exists():
+            shutil.rmtree(self.staging)
+        self.staging.mkdir(parents=True)
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if not self._committed:
+            shutil.rmtree(self.staging, ignore_errors=True)
+
+    def path(self, name: str) -> Path:
+        return self.staging / name
+
+    def commit(
+        self,
+        tables: Mapping[str, pl.DataFrame],
+        *,
+        manifest: dict[str, Any],
+        row_counts: Mapping[str, int],
+        extra_files: Mapping[str, bytes] | None = None,
+    ) -> Path:
+        """Write the remaining tables, the DuckDB file and the manifest, then swap folders.
+
+        Parquet files already in the staging folder (streamed tables) are kept and loaded
+        into DuckDB with the rest.
+        """
         for name, frame in tables.items():
-            path = staging / f"{name}.parquet"
-            frame.write_parquet(path, compression="zstd", statistics=True)
-            paths[name] = path
-        views = write_duckdb(staging / "results.duckdb", paths)
+            frame.write_parquet(self.staging / f"{name}.parquet", compression="zstd")
+        parquet = {p.stem: p for p in sorted(self.staging.glob("*.parquet"))}
+        views = write_duckdb(self.staging / "results.duckdb", parquet)
         for name, content in (extra_files or {}).items():
-            (staging / name).write_bytes(content)
+            (self.staging / name).write_bytes(content)
         manifest = dict(manifest)
         manifest["outputs"] = {
-            name: {"file": f"{name}.parquet", "rows": frame.height}
-            for name, frame in tables.items()
+            name: {"file": f"{name}.parquet", "rows": int(row_counts[name])}
+            for name in sorted(parquet)
         }
         manifest["duckdb_views"] = views
-        (staging / "manifest.json").write_text(
+        (self.staging / "manifest.json").write_text(
             json.dumps(manifest, indent=2, sort_keys=True, default=str) + "\n", encoding="utf-8"
         )
-        if out_dir.exists():
-            out_dir.rename(previous)
-        staging.rename(out_dir)
-        shutil.rmtree(previous, ignore_errors=True)
-    except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
-        if previous.exists() and not out_dir.exists():
-            previous.rename(out_dir)
-        raise
-    return out_dir
+        if self.out_dir.exists():
+            self.out_dir.rename(self._previous)
+        try:
+            self.staging.rename(self.out_dir)
+        except BaseException:
+            if self._previous.exists() and not self.out_dir.exists():
+                self._previous.rename(self.out_dir)
+            raise
+        self._committed = True
+        shutil.rmtree(self._previous, ignore_errors=True)
+        return self.out_dir

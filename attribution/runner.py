@@ -1,34 +1,38 @@
-"""The local runner: read, validate, decompose, link and summarise a roster in one pass.
+"""The local runner: read, validate, decompose, link and summarise a roster, shard by shard.
 
-The numerics live in their own modules (:mod:`~attribution.decompose`,
-:mod:`~attribution.linking`, :mod:`~attribution.summary`); this module only wires them
-together in the order DESIGN §2–§5 asks for and records what happened.
+Portfolios are processed in shards (sorted ids, ``shard_size`` at a time): each shard's rows
+are read from the inputs with a filter on ``portfolio_id``, so peak memory follows the
+shard, not the roster. Tables shared by all portfolios (index_returns, riskfree) are read
+and checked once. The numerics live in :mod:`attribution.kernel`,
+:mod:`attribution.linking` and :mod:`attribution.summary`; this module wires them in the
+order DESIGN §2–§5 asks for and records what happened.
 """
 
 from __future__ import annotations
 
 import time
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 
 import polars as pl
 
 from attribution.calendar import Calendar, align_dates, build_calendar
-from attribution.decompose import decompose, holdings_windows, policy_assignment
+from attribution.decompose import EFFECTS_ORDER, SERIES_ORDER, run_shard
 from attribution.errors import EXIT_OK, EXIT_SKIPPED, OptionError, ReadError
-from attribution.load import TableSource, read_inputs
+from attribution.load import TableReader, TableSource
 from attribution.options import RunOptions
-from attribution.summary import summarise, summarise_windows
+from attribution.summary import summary_frame, windows_frame
 from attribution.validate import (
     check_index_returns,
-    check_portfolio_tables,
     check_riskfree,
     empty_issues,
-    skipped_portfolios,
+    orphan_issues,
 )
 
 PID = "portfolio_id"
-_DATE_COLUMNS = {
+DEFAULT_SHARD_SIZE = 2500
+PORTFOLIO_TABLES = ("holdings", "policy", "segment_returns", "portfolio_returns")
+DATE_COLUMNS = {
     "holdings": "as_of",
     "index_returns": "period_end",
     "policy": "effective_from",
@@ -36,50 +40,26 @@ _DATE_COLUMNS = {
     "segment_returns": "period_end",
     "portfolio_returns": "period_end",
 }
-SERIES_ORDER = (
-    "portfolio_id",
-    "period_end",
-    "period_start",
-    "return_source",
-    "portfolio_return",
-    "computed_return",
-    "policy_return",
-    "active_return",
-    "static_allocation",
-    "timing",
-    "selection",
-    "interaction",
-    "residual",
-    "is_drifted",
-    "cum_portfolio_return",
-    "cum_policy_return",
-    "cum_active_return",
-    "cum_static_allocation",
-    "cum_timing",
-    "cum_selection",
-    "cum_interaction",
-    "cum_residual",
-)
 
 
 @dataclass(frozen=True)
-class Checked:
-    """Validated inputs: the tables, the calendar, the issues and who is skipped."""
+class SharedInputs:
+    """The tables every portfolio uses, checked: calendar, index returns, riskless series."""
 
-    tables: dict[str, pl.DataFrame | None]
     calendar: Calendar
+    index_returns: pl.DataFrame
     riskless: pl.DataFrame | None
-    periods: pl.DataFrame
-    issues: pl.DataFrame
-    skipped: tuple[str, ...]
-    portfolios: tuple[str, ...]
 
 
 @dataclass(frozen=True)
 class RunResult:
-    """Everything one run produces, as polars frames, plus its bookkeeping."""
+    """Everything one run produces, as polars frames, plus its bookkeeping.
 
-    effects: pl.DataFrame
+    ``effects`` is None when the run streamed it to a file (``effects_file``) instead of
+    holding the roster's largest table in memory.
+    """
+
+    effects: pl.DataFrame | None
     summary: pl.DataFrame
     summary_windows: pl.DataFrame
     series: pl.DataFrame
@@ -96,16 +76,68 @@ class RunResult:
         return EXIT_SKIPPED if self.skipped or self.summary.height == 0 else EXIT_OK
 
     def tables(self) -> dict[str, pl.DataFrame]:
-        """The output tables by their contract names (DESIGN §5)."""
-        out = {
-            "effects": self.effects,
-            "summary": self.summary,
-            "summary_windows": self.summary_windows,
-            "series": self.series,
-            "data_issues": self.data_issues,
-        }
+        """The output tables held in memory, by their contract names (DESIGN §5)."""
+        out = {} if self.effects is None else {"effects": self.effects}
+        out.update(
+            {
+                "summary": self.summary,
+                "summary_windows": self.summary_windows,
+                "series": self.series,
+                "data_issues": self.data_issues,
+            }
+        )
         out.update(self.extra_tables)
         return out
+
+
+def _aligned(frame: pl.DataFrame, table: str, options: RunOptions) -> pl.DataFrame:
+    if options.align == "none":
+        return frame
+    return frame.with_columns(align_dates(DATE_COLUMNS[table], options.align))
+
+
+def load_shared(readers: Mapping[str, TableReader], options: RunOptions) -> SharedInputs:
+    """Read and check index_returns and riskfree; build the calendar (exit 2 on problems)."""
+    index_returns = _aligned(readers["index_returns"].read_all(), "index_returns", options)
+    check_index_returns(index_returns)
+    calendar = build_calendar(index_returns["period_end"])
+    riskless = None
+    if "riskfree" in readers:
+        rf = _aligned(readers["riskfree"].read_all(), "riskfree", options)
+        riskless = check_riskfree(rf, calendar)
+    classes = sorted(index_returns["asset_class"].unique().to_list())
+    if options.cash_class is not None:
+        if options.cash_class not in classes:
+            msg = (
+                f"The 'cash_class' option names {options.cash_class!r}, which index_returns "
+                f"does not carry; its classes are {classes}."
+            )
+            raise OptionError(msg)
+        if riskless is None:
+            riskless = (
+                index_returns.filter(pl.col("asset_class") == options.cash_class)
+                .select("period_end", "return")
+                .sort("period_end")
+            )
+    if options.market != "policy" and options.market not in classes:
+        msg = (
+            f"The 'market' option must be 'policy' or an asset class of index_returns "
+            f"({classes}). Got {options.market!r} instead."
+        )
+        raise OptionError(msg)
+    return SharedInputs(calendar=calendar, index_returns=index_returns, riskless=riskless)
+
+
+def open_readers(sources: Mapping[str, TableSource | None]) -> dict[str, TableReader]:
+    """A reader per given table; the three required tables must be present."""
+    for table in ("holdings", "index_returns", "policy"):
+        if sources.get(table) is None:
+            flag = "--" + table.replace("_", "-")
+            msg = f"{table}: this table is required (give it with {flag})."
+            raise ReadError(msg)
+    return {
+        name: TableReader(src, name) for name, src in sources.items() if src is not None
+    }
 
 
 def _sort_issues(issues: pl.DataFrame) -> pl.DataFrame:
@@ -114,106 +146,78 @@ def _sort_issues(issues: pl.DataFrame) -> pl.DataFrame:
     )
 
 
-def check_inputs(sources: Mapping[str, TableSource | None], options: RunOptions) -> Checked:
-    """Read and validate the inputs; raise on whole-input problems (exit 2).
+def run_roster(
+    sources: Mapping[str, TableSource | None],
+    options: RunOptions,
+    *,
+    shard_size: int = DEFAULT_SHARD_SIZE,
+    effects_sink: Callable[[pl.DataFrame], None] | None = None,
+) -> RunResult:
+    """Run the decomposition, linking and summaries for every portfolio that can run.
 
-    Returns the tables restricted to the portfolios that can run, the calendar, the
-    riskless series (from ``riskfree`` or the ``cash_class`` index) and every data issue.
+    Whole-input problems raise (exit 2); portfolio problems become ``data_issues`` rows.
+    With ``effects_sink`` each shard's effects table is handed over and not kept.
     """
-    tables = read_inputs(sources)
-    if options.align != "none":
-        tables = {
-            name: None
-            if frame is None
-            else frame.with_columns(align_dates(_DATE_COLUMNS[name], options.align))
-            for name, frame in tables.items()
-        }
-    index_returns = tables["index_returns"]
-    holdings = tables["holdings"]
-    assert index_returns is not None
-    assert holdings is not None
-    if holdings.height == 0:
+    timings: dict[str, float] = {"read_and_validate": 0.0, "decompose": 0.0, "summarise": 0.0}
+    clock = time.perf_counter()
+    readers = open_readers(sources)
+    shared = load_shared(readers, options)
+    held = readers["holdings"].portfolio_ids()
+    if held.len() == 0:
         msg = "holdings: the table has no rows; expected at least one portfolio's weights."
         raise ReadError(msg)
-    check_index_returns(index_returns)
-    calendar = build_calendar(index_returns["period_end"])
-    riskless = None
-    if tables["riskfree"] is not None:
-        riskless = check_riskfree(tables["riskfree"], calendar)
-    classes = set(index_returns["asset_class"].to_list())
-    if options.cash_class is not None:
-        if options.cash_class not in classes:
-            msg = (
-                f"The 'cash_class' option names {options.cash_class!r}, which index_returns "
-                f"does not carry; its classes are {sorted(classes)}."
-            )
-            raise OptionError(msg)
-        if riskless is None:
-            riskless = index_returns.filter(pl.col("asset_class") == options.cash_class).select(
-                "period_end", "return"
-            )
-    if options.market != "policy" and options.market not in classes:
-        msg = (
-            f"The 'market' option must be 'policy' or an asset class of index_returns "
-            f"({sorted(classes)}). Got {options.market!r} instead."
+    others = [readers[n].portfolio_ids() for n in PORTFOLIO_TABLES[1:] if n in readers]
+    issues = [empty_issues(), orphan_issues(held, others)]
+    timings["read_and_validate"] += time.perf_counter() - clock
+
+    ids = held.to_list()
+    effects_parts: list[pl.DataFrame] = []
+    series_parts, summary_parts, window_parts = [], [], []
+    skipped: list[str] = []
+    ppy = shared.calendar.periods_per_year
+    for start in range(0, len(ids), shard_size):
+        shard = ids[start : start + shard_size]
+        clock = time.perf_counter()
+        tables = {
+            name: _aligned(readers[name].read_shard(shard), name, options)
+            if name in readers
+            else None
+            for name in PORTFOLIO_TABLES
+        }
+        timings["read_and_validate"] += time.perf_counter() - clock
+        clock = time.perf_counter()
+        part = run_shard(tables, shared.calendar, shared.index_returns, options)
+        timings["decompose"] += time.perf_counter() - clock
+        clock = time.perf_counter()
+        summary_parts.append(
+            summary_frame(part.periods, linking=options.linking, periods_per_year=ppy)
         )
-        raise OptionError(msg)
-    issues = check_portfolio_tables(tables, calendar, weight_tolerance=options.weight_tolerance)
-    skipped = set(skipped_portfolios(issues).to_list())
-
-    def keep(frame: pl.DataFrame | None) -> pl.DataFrame | None:
-        if frame is None or PID not in frame.columns:
-            return frame
-        return frame.filter(~pl.col(PID).is_in(list(skipped)))
-
-    kept = {name: keep(frame) for name, frame in tables.items()}
-    assert kept["holdings"] is not None
-    assert kept["policy"] is not None
-    windows, gap_issues = holdings_windows(kept["holdings"], calendar)
-    periods, policy_issues = policy_assignment(windows, kept["policy"], calendar)
-    more = set(policy_issues[PID].to_list())
-    skipped |= more
-    kept = {name: keep(frame) for name, frame in kept.items()}
-    periods = periods.filter(~pl.col(PID).is_in(list(more)))
-    all_issues = pl.concat([empty_issues(), issues, gap_issues, policy_issues])
-    portfolios = tuple(sorted(set(periods[PID].unique().to_list())))
-    return Checked(
-        tables=kept,
-        calendar=calendar,
-        riskless=riskless,
-        periods=periods,
-        issues=all_issues,
-        skipped=tuple(sorted(skipped)),
-        portfolios=portfolios,
+        window_parts.append(
+            windows_frame(part.periods, linking=options.linking, periods_per_year=ppy)
+        )
+        timings["summarise"] += time.perf_counter() - clock
+        series_parts.append(part.series)
+        issues.append(part.issues)
+        skipped.extend(part.skipped)
+        if effects_sink is not None:
+            effects_sink(part.effects)
+        else:
+            effects_parts.append(part.effects)
+    effects = (
+        pl.concat(effects_parts)
+        if effects_parts
+        else None
+        if effects_sink is not None
+        else pl.DataFrame(schema={c: pl.Float64 for c in EFFECTS_ORDER})
     )
-
-
-def run_roster(sources: Mapping[str, TableSource | None], options: RunOptions) -> RunResult:
-    """Run the decomposition, linking and summaries for every portfolio that can run."""
-    timings: dict[str, float] = {}
-    clock = time.perf_counter()
-    checked = check_inputs(sources, options)
-    timings["read_and_validate"] = time.perf_counter() - clock
-
-    clock = time.perf_counter()
-    parts = decompose(checked.tables, checked.periods, options)
-    timings["decompose"] = time.perf_counter() - clock
-
-    clock = time.perf_counter()
-    ppy = checked.calendar.periods_per_year
-    series, summary = summarise(parts.periods, linking=options.linking, periods_per_year=ppy)
-    windows = summarise_windows(parts.periods, linking=options.linking, periods_per_year=ppy)
-    timings["link_and_summarise"] = time.perf_counter() - clock
-
-    issues = _sort_issues(pl.concat([checked.issues, parts.issues]))
     return RunResult(
-        effects=parts.effects,
-        summary=summary,
-        summary_windows=windows,
-        series=series.select(SERIES_ORDER),
-        data_issues=issues,
-        calendar=checked.calendar,
+        effects=effects,
+        summary=pl.concat(summary_parts),
+        summary_windows=pl.concat(window_parts),
+        series=pl.concat(series_parts).select(SERIES_ORDER),
+        data_issues=_sort_issues(pl.concat(issues)),
+        calendar=shared.calendar,
         options=options,
-        skipped=checked.skipped,
+        skipped=tuple(sorted(skipped)),
         timings=timings,
     )

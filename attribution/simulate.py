@@ -31,12 +31,23 @@ import pyarrow.parquet as pq
 from attribution.errors import OptionError
 
 __all__ = [
+    "CATALOGUE",
     "DEMO_MANAGERS",
     "DEMO_PLAN",
+    "DEMO_POLICY",
     "DEMO_SEED",
     "TABLES",
+    "AssetClassSpec",
+    "asset_classes",
     "demo_roster",
+    "factor_index_returns",
+    "hold_between_rebalances",
+    "month_ends",
+    "previous_month_end",
+    "riskless_path",
+    "shift_weights",
     "simulate_roster",
+    "timing_signs",
     "write_simulated_roster",
     "write_tables",
 ]
@@ -243,48 +254,90 @@ def timing_signs(excess: np.ndarray, correct: np.ndarray) -> np.ndarray:
 # --------------------------------------------------------------------------------------
 
 
+def _repeat_strings(values: pl.Series, index: np.ndarray) -> pl.Series:
+    """``values[index]`` as a String series.
+
+    Gathering through a Categorical and casting back is several times faster than gathering
+    strings directly on tables of millions of rows (measured with polars 2.1).
+    """
+    return values.cast(pl.Categorical).gather(index).cast(pl.String)
+
+
+def _date_column(dates: list[date], index: np.ndarray) -> pl.Series:
+    """``dates[index]`` as a Date series, gathered on the integer day numbers."""
+    days = pl.Series(dates, dtype=pl.Date).to_physical().to_numpy()
+    return pl.Series(days[index]).cast(pl.Date)
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class _Grid:
+    """Key columns of an (n, T, K) array flattened in row-major order.
+
+    Built once and shared by the holdings and segment-return frames (polars columns are
+    reference-counted, so sharing costs nothing).
+    """
+
+    portfolio_id: pl.Series
+    asset_class: pl.Series
+    date_index: np.ndarray
+    shape: tuple[int, int, int]
+
+
+def _grid(ids: pl.Series, n_dates: int, classes: list[str]) -> _Grid:
+    n, n_classes = ids.len(), len(classes)
+    per_portfolio = n_dates * n_classes
+    return _Grid(
+        portfolio_id=_repeat_strings(
+            ids.alias("portfolio_id"), np.repeat(np.arange(n, dtype=np.uint32), per_portfolio)
+        ),
+        asset_class=_repeat_strings(
+            pl.Series("asset_class", classes, dtype=pl.String),
+            np.tile(np.arange(n_classes, dtype=np.uint32), n * n_dates),
+        ),
+        date_index=np.tile(np.repeat(np.arange(n_dates, dtype=np.uint32), n_classes), n),
+        shape=(n, n_dates, n_classes),
+    )
+
+
 def _long_frame(
-    ids: pl.Series,
+    grid: _Grid,
     dates: list[date],
-    classes: list[str],
     values: np.ndarray,
     *,
     date_column: str,
     value_column: str,
     keep: np.ndarray | None = None,
 ) -> pl.DataFrame:
-    """Flatten an (n, T, K) array into rows (portfolio_id, date, asset_class, value)."""
-    n, n_dates, n_classes = values.shape
-    rows = n * n_dates * n_classes
-    p_idx = np.repeat(np.arange(n, dtype=np.uint32), n_dates * n_classes)
-    t_idx = np.tile(np.repeat(np.arange(n_dates, dtype=np.uint32), n_classes), n)
-    k_idx = np.tile(np.arange(n_classes, dtype=np.uint32), n * n_dates)
+    """Rows (portfolio_id, date, asset_class, value) from an (n, T, K) array on ``grid``."""
+    if values.shape != grid.shape:
+        msg = f"values of shape {values.shape} do not match the grid {grid.shape}"
+        raise ValueError(msg)
     frame = pl.DataFrame(
-        {
-            "portfolio_id": ids.gather(p_idx),
-            date_column: pl.Series(dates, dtype=pl.Date).gather(t_idx),
-            "asset_class": pl.Series(classes, dtype=pl.String).gather(k_idx),
-            value_column: values.reshape(rows),
-        }
+        [
+            grid.portfolio_id,
+            _date_column(dates, grid.date_index).alias(date_column),
+            grid.asset_class,
+            pl.Series(value_column, values.reshape(-1)),
+        ]
     )
     if keep is not None:
-        frame = frame.filter(pl.Series(keep.reshape(rows)))
+        frame = frame.filter(pl.Series(keep.reshape(-1)))
     return frame
 
 
 def _portfolio_frame(
     ids: pl.Series, dates: list[date], values: np.ndarray, *, keep: np.ndarray | None = None
 ) -> pl.DataFrame:
-    """Flatten an (n, T) array into rows (portfolio_id, period_end, return)."""
+    """Rows (portfolio_id, period_end, return) from an (n, T) array."""
     n, n_dates = values.shape
     frame = pl.DataFrame(
-        {
-            "portfolio_id": ids.gather(np.repeat(np.arange(n, dtype=np.uint32), n_dates)),
-            "period_end": pl.Series(dates, dtype=pl.Date).gather(
-                np.tile(np.arange(n_dates, dtype=np.uint32), n)
+        [
+            _repeat_strings(
+                ids.alias("portfolio_id"), np.repeat(np.arange(n, dtype=np.uint32), n_dates)
             ),
-            "return": values.reshape(n * n_dates),
-        }
+            _date_column(dates, np.tile(np.arange(n_dates), n)).alias("period_end"),
+            pl.Series("return", values.reshape(-1)),
+        ]
     )
     if keep is not None:
         frame = frame.filter(pl.Series(keep.reshape(-1)))
@@ -323,16 +376,14 @@ def _policy_frame(
 
     ``keep`` (n, S) says which of the S candidate sets a portfolio actually has.
     """
-    n, n_sets, n_classes = weights.shape
-    keep_rows = np.repeat(keep.reshape(-1), n_classes)
+    _, n_sets, n_classes = weights.shape
     frame = _long_frame(
-        ids,
+        _grid(ids, n_sets, classes),
         effective,
-        classes,
         weights,
         date_column="effective_from",
         value_column="weight",
-        keep=keep_rows.reshape(n, n_sets, n_classes),
+        keep=np.repeat(keep[:, :, None], n_classes, axis=2),
     )
     return frame.select("portfolio_id", "asset_class", "weight", "effective_from")
 
@@ -366,13 +417,13 @@ DEMO_MISSING_SEGMENT_CLASS = "real_estate"
 DEMO_MISSING_SEGMENT_MONTHS = (date(2018, 10, 31), date(2018, 11, 30), date(2018, 12, 31))
 
 DEMO_MANAGERS: dict[str, str] = {
-    "ambrisk_multiasset": "genuine timer: equity shifted ±10-15 points, right 72 % of months",
-    "dellowmere_dynamic": "perverse timer: the same shifts, right only 28 % of months",
+    "ambrisk_multiasset": "genuine timer: equity shifted ±10-15 points, right with p = 0.72",
+    "dellowmere_dynamic": "perverse timer: the same shifts, right with p = 0.28",
     "korvane_balanced": "structural overweight: equities +10 points, rebalanced monthly",
     "orvelle_partners": "flat weights equal to policy; +0.15 %/month selection per class",
     "pentaloom_global": "coin-flipper: the same shifts in random directions",
     "saltmarrow_trust": "drifter: starts at policy on 2014-12-31, never rebalances",
-    "tibbrenn_capital": "new manager: 18 months of record, mild timer (right 60 %)",
+    "tibbrenn_capital": "new manager: 18 months of record, mild timer (p = 0.6)",
     "wistrel_advisors": "quarterly holdings, +5 points equity target, policy change, "
     "real_estate segment returns missing for three months",
 }
@@ -436,8 +487,13 @@ def demo_roster(*, seed: int = DEMO_SEED) -> dict[str, pl.DataFrame]:
 
     Segment returns are ``b + alpha + tracking noise``; the reported return is
     ``Σ w r − fee/12 + N(0, 0.02 %)`` with the weights actually held (drifted between
-    quarterly holdings). All numbers are invented; see ``fixtures/demo/README.md``.
+    quarterly holdings). All numbers are invented; see ``fixtures/demo/README.md``. The
+    behaviours hold in expectation for any ``seed``; the default seed's realised sample is
+    the one the committed files and their tests describe.
     """
+    if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
+        msg = f"The 'seed' parameter must be an integer >= 0. Got {seed!r} instead."
+        raise OptionError(msg)
     market_rng = np.random.default_rng([seed, 0])
     specs = asset_classes(DEMO_N_CLASSES)
     classes = [s.name for s in specs]
@@ -506,19 +562,18 @@ def demo_roster(*, seed: int = DEMO_SEED) -> dict[str, pl.DataFrame]:
 
     ids = pl.Series("portfolio_id", [m.name for m in managers], dtype=pl.String)
     tables = _shared_frames(period_ends, classes, index_returns, riskless)
+    grid = _grid(ids, n_periods, classes)
     tables["holdings"] = _long_frame(
-        ids,
+        grid,
         starts,
-        classes,
         weights,
         date_column="as_of",
         value_column="weight",
         keep=np.repeat(holdings_kept[:, :, None], n_classes, axis=2),
     )
     tables["segment_returns"] = _long_frame(
-        ids,
+        grid,
         period_ends,
-        classes,
         segment,
         date_column="period_end",
         value_column="return",
@@ -619,8 +674,12 @@ def _market(*, n_classes: int, n_periods: int, seed: int, start: date) -> _Marke
 def _random_policies(
     specs: tuple[AssetClassSpec, ...], n: int, rng: np.random.Generator
 ) -> np.ndarray:
-    """(n, K) random strategic mixes: group base shares scaled by Gamma(4) draws, normalised."""
-    base = np.array([{"risky": 1.0, "defensive": 1.0, "other": 0.5}[s.group] for s in specs])
+    """(n, K) random strategic mixes: base shares scaled by Gamma(4) draws, normalised.
+
+    Base shares: 1 for risky and defensive classes, 0.5 for the others, 0.3 for cash.
+    """
+    shares = {"risky": 1.0, "defensive": 1.0, "other": 0.5}
+    base = np.array([0.3 if s.name == "cash" else shares[s.group] for s in specs])
     raw = base * rng.gamma(4.0, size=(n, len(specs)))
     return raw / raw.sum(axis=1, keepdims=True)
 
@@ -727,9 +786,10 @@ def _portfolio_tables(
     data = _portfolio_range(market, first, stop)
     ids = _portfolio_ids(first, stop, n_portfolios)
     classes = market.classes
+    grid = _grid(ids, len(market.period_ends), classes)
     tables = {
         "holdings": _long_frame(
-            ids, market.starts, classes, data.weights, date_column="as_of", value_column="weight"
+            grid, market.starts, data.weights, date_column="as_of", value_column="weight"
         ),
         "policy": _policy_frame(
             ids,
@@ -741,12 +801,7 @@ def _portfolio_tables(
     }
     if segment_returns:
         tables["segment_returns"] = _long_frame(
-            ids,
-            market.period_ends,
-            classes,
-            data.segment,
-            date_column="period_end",
-            value_column="return",
+            grid, market.period_ends, data.segment, date_column="period_end", value_column="return"
         )
     if portfolio_returns:
         tables["portfolio_returns"] = _portfolio_frame(ids, market.period_ends, data.reported)
@@ -754,10 +809,17 @@ def _portfolio_tables(
 
 
 def _check_sizes(
-    *, n_portfolios: int, n_classes: int, n_periods: int, shard_size: int | None = None
+    *,
+    n_portfolios: int,
+    n_classes: int,
+    n_periods: int,
+    seed: int,
+    shard_size: int | None = None,
 ) -> None:
+    """Refuse sizes and seeds the generator cannot use, naming the parameter."""
     limits = {"n_portfolios": (n_portfolios, 1), "n_classes": (n_classes, 2)}
     limits["n_periods"] = (n_periods, 2)
+    limits["seed"] = (seed, 0)
     if shard_size is not None:
         limits["shard_size"] = (shard_size, 1)
     for name, (value, low) in limits.items():
@@ -794,7 +856,7 @@ def simulate_roster(
     only on ``seed``, its number and the calendar/class sizes (blocks of
     :data:`BLOCK_SIZE` portfolios share one random stream).
     """
-    _check_sizes(n_portfolios=n_portfolios, n_classes=n_classes, n_periods=n_periods)
+    _check_sizes(n_portfolios=n_portfolios, n_classes=n_classes, n_periods=n_periods, seed=seed)
     market = _market(n_classes=n_classes, n_periods=n_periods, seed=seed, start=start)
     tables = _shared_frames(
         market.period_ends, market.classes, market.index_returns, market.riskless
@@ -810,6 +872,23 @@ def simulate_roster(
         )
     )
     return {name: tables[name] for name in TABLES if name in tables}
+
+
+def _parquet_writer(path: Path, schema: pa.Schema) -> pq.ParquetWriter:
+    """A zstd Parquet writer: dictionary encoding for keys, byte-stream split for floats.
+
+    Trying a dictionary on random floats only to fall back wastes time; byte-stream split
+    compresses them better (measured here: about twice as fast, slightly smaller files).
+    """
+    floats = [f.name for f in schema if pa.types.is_floating(f.type)]
+    keys = [f.name for f in schema if f.name not in floats]
+    return pq.ParquetWriter(
+        path,
+        schema,
+        compression="zstd",
+        use_dictionary=keys,
+        use_byte_stream_split=floats,
+    )
 
 
 def write_simulated_roster(
@@ -832,7 +911,11 @@ def write_simulated_roster(
     arguments, whatever the shard size. Returns ``{table: path}``.
     """
     _check_sizes(
-        n_portfolios=n_portfolios, n_classes=n_classes, n_periods=n_periods, shard_size=shard_size
+        n_portfolios=n_portfolios,
+        n_classes=n_classes,
+        n_periods=n_periods,
+        seed=seed,
+        shard_size=shard_size,
     )
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -854,10 +937,11 @@ def write_simulated_roster(
                 portfolio_returns=portfolio_returns,
             )
             for name, frame in shard.items():
-                table: pa.Table = frame.to_arrow()
+                # String views pass to Arrow without a copy; Parquet stores them as UTF-8.
+                table: pa.Table = frame.to_arrow(compat_level=pl.CompatLevel.newest())
                 if name not in writers:
                     paths[name] = out_dir / f"{name}.parquet"
-                    writers[name] = pq.ParquetWriter(paths[name], table.schema, compression="zstd")
+                    writers[name] = _parquet_writer(paths[name], table.schema)
                 writers[name].write_table(table)
     finally:
         for writer in writers.values():

@@ -13,9 +13,12 @@ active return).
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
+import numpy as np
 import polars as pl
 
-from attribution.linking import link_cumulative, log_ratio_coefficient
+from attribution.linking import link_arrays, log_ratio_coefficient
 
 PID = "portfolio_id"
 LINKED_EFFECTS = ("static_allocation", "timing", "selection", "interaction", "residual")
@@ -37,91 +40,162 @@ SUMMARY_ORDER = (
 )
 
 
-def _totals(linked: pl.DataFrame, keys: list[str], periods_per_year: int) -> pl.DataFrame:
-    """Collapse linked cumulative rows (sorted by period) to one row per group."""
-    ppy = float(periods_per_year)
-    agg = linked.group_by(keys, maintain_order=True).agg(
-        pl.col("period_end").first().alias("first_period"),
-        pl.col("period_end").last().alias("last_period"),
-        pl.len().alias("n_periods"),
-        pl.col("return_source").first(),
-        pl.col("cum_portfolio_return").last().alias("portfolio_return"),
-        pl.col("cum_policy_return").last().alias("policy_return"),
-        pl.col("cum_active_return").last().alias("active_return"),
-        *(pl.col(f"cum_{e}").last().alias(e) for e in LINKED_EFFECTS),
-        (pl.col("active_return").std(ddof=1) * ppy**0.5).alias("tracking_error"),
-        pl.col("is_drifted").sum().alias("n_drifted_periods"),
-        pl.col("n_selection_missing").sum(),
-    )
-    n = pl.col("n_periods").cast(pl.Float64)
-    long_enough = pl.col("n_periods") >= periods_per_year
-    r_ann = (1.0 + pl.col("portfolio_return")) ** (ppy / n) - 1.0
-    b_ann = (1.0 + pl.col("policy_return")) ** (ppy / n) - 1.0
-    agg = agg.with_columns(
-        portfolio_return_ann=pl.when(long_enough).then(r_ann),
-        policy_return_ann=pl.when(long_enough).then(b_ann),
-    ).with_columns(
-        active_return_ann=pl.col("portfolio_return_ann") - pl.col("policy_return_ann"),
-    )
-    scale = (
-        log_ratio_coefficient(pl.col("portfolio_return"), pl.col("policy_return"))
-        * (ppy / n)
-        / log_ratio_coefficient(pl.col("portfolio_return_ann"), pl.col("policy_return_ann"))
-    )
-    agg = agg.with_columns(
-        *((pl.col(e) * scale).alias(f"{e}_ann") for e in LINKED_EFFECTS),
-        information_ratio=pl.when(pl.col("tracking_error") > 0).then(
-            pl.col("active_return_ann") / pl.col("tracking_error")
-        ),
-    )
-    return agg
+@dataclass(frozen=True)
+class PeriodArrays:
+    """Per-period totals of a shard as (P, T) arrays; ``effects`` is (P, T, 5) in the order
+    of :data:`LINKED_EFFECTS` with NaN where an effect is unknown."""
+
+    portfolio_ids: tuple[str, ...]
+    period_ends: pl.Series  # (T,) dates
+    active: np.ndarray
+    portfolio_return: np.ndarray
+    policy_return: np.ndarray
+    effects: np.ndarray
+    is_drifted: np.ndarray
+    n_selection_missing: np.ndarray
+    return_source: np.ndarray  # (P,) str
 
 
-def summarise(
-    periods: pl.DataFrame, *, linking: str, periods_per_year: int
-) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Link the per-period totals over each portfolio's whole record.
+def window_totals(
+    arrays: PeriodArrays, mask: np.ndarray, *, linking: str, periods_per_year: int
+) -> dict[str, np.ndarray]:
+    """Link every portfolio's periods inside ``mask`` (P, T) on their own and summarise.
 
-    Returns ``(series, summary)``: ``series`` is ``periods`` with the cumulative linked
-    columns; ``summary`` has one row per portfolio in :data:`SUMMARY_ORDER`.
+    Returns column name -> (P,) array; rows with an empty mask are meaningless and must be
+    dropped by the caller.
     """
-    series = link_cumulative(periods, method=linking, effects=LINKED_EFFECTS)  # type: ignore[arg-type]
-    summary = _totals(series, [PID], periods_per_year).with_columns(linking=pl.lit(linking))
-    return series, summary.select(SUMMARY_ORDER).sort(PID)
+    ppy = float(periods_per_year)
+    columns = np.flatnonzero(mask.any(axis=0))
+    if len(columns) and (columns[0] > 0 or columns[-1] < mask.shape[1] - 1):
+        # Only the window's span of periods matters; slicing keeps per-year passes cheap.
+        span = slice(int(columns[0]), int(columns[-1]) + 1)
+        arrays = PeriodArrays(
+            portfolio_ids=arrays.portfolio_ids,
+            period_ends=arrays.period_ends[span],
+            active=arrays.active[:, span],
+            portfolio_return=arrays.portfolio_return[:, span],
+            policy_return=arrays.policy_return[:, span],
+            effects=arrays.effects[:, span],
+            is_drifted=arrays.is_drifted[:, span],
+            n_selection_missing=arrays.n_selection_missing[:, span],
+            return_source=arrays.return_source,
+        )
+        mask = mask[:, span]
+    known = ~np.isnan(arrays.effects)
+    effects = np.where(known, arrays.effects, 0.0)
+    linked, rc, bc = link_arrays(
+        arrays.portfolio_return,
+        arrays.policy_return,
+        effects,
+        mask,
+        linking,  # type: ignore[arg-type]
+    )
+    n = mask.sum(axis=1)
+    n_f = np.maximum(n, 1).astype(float)
+    last_col = linked[:, -1, :]
+    # An effect is null for a portfolio when it is unknown in every period of the window.
+    any_known = (known & mask[:, :, None]).any(axis=1)
+    totals = np.where(any_known, last_col, np.nan)
+    r_cum, b_cum = rc[:, -1], bc[:, -1]
+    active = arrays.portfolio_return - arrays.policy_return
+    mean = np.where(mask, active, 0.0).sum(axis=1) / n_f
+    sq = np.where(mask, (active - mean[:, None]) ** 2, 0.0).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        te = np.where(n > 1, np.sqrt(sq / np.maximum(n - 1, 1)) * np.sqrt(ppy), np.nan)
+        long_enough = n >= periods_per_year
+        r_ann = np.where(long_enough, (1.0 + r_cum) ** (ppy / n_f) - 1.0, np.nan)
+        b_ann = np.where(long_enough, (1.0 + b_cum) ** (ppy / n_f) - 1.0, np.nan)
+        scale = (
+            log_ratio_coefficient(r_cum, b_cum)
+            * (ppy / n_f)
+            / log_ratio_coefficient(np.nan_to_num(r_ann), np.nan_to_num(b_ann))
+        )
+        a_ann = r_ann - b_ann
+        ir = np.where(te > 0, a_ann / np.where(te > 0, te, 1.0), np.nan)
+    offset = int(columns[0]) if len(columns) else 0
+    first = offset + np.argmax(mask, axis=1)
+    last = offset + mask.shape[1] - 1 - np.argmax(mask[:, ::-1], axis=1)
+    out: dict[str, np.ndarray] = {
+        "_first": first,
+        "_last": last,
+        "n_periods": n,
+        "portfolio_return": r_cum,
+        "policy_return": b_cum,
+        "active_return": r_cum - b_cum,
+    }
+    for j, name in enumerate(LINKED_EFFECTS):
+        out[name] = totals[:, j]
+    out["portfolio_return_ann"] = r_ann
+    out["policy_return_ann"] = b_ann
+    out["active_return_ann"] = a_ann
+    for j, name in enumerate(LINKED_EFFECTS):
+        out[f"{name}_ann"] = np.where(long_enough, totals[:, j] * scale, np.nan)
+    out["tracking_error"] = te
+    out["information_ratio"] = ir
+    out["n_drifted_periods"] = (mask & arrays.is_drifted).sum(axis=1)
+    out["n_selection_missing"] = np.where(mask, arrays.n_selection_missing, 0).sum(axis=1)
+    return out
 
 
-def summarise_windows(
-    periods: pl.DataFrame, *, linking: str, periods_per_year: int
+def _frame(
+    arrays: PeriodArrays, cols: dict[str, np.ndarray], rows: np.ndarray, linking: str
 ) -> pl.DataFrame:
+    ids = pl.Series(PID, list(arrays.portfolio_ids), dtype=pl.String)
+    data: dict[str, pl.Series] = {
+        PID: ids.gather(rows),
+        "first_period": arrays.period_ends.gather(cols["_first"][rows]).alias("first_period"),
+        "last_period": arrays.period_ends.gather(cols["_last"][rows]).alias("last_period"),
+        "n_periods": pl.Series(cols["n_periods"][rows], dtype=pl.Int64),
+        "return_source": pl.Series(arrays.return_source[rows], dtype=pl.String),
+        "linking": pl.Series([linking] * len(rows), dtype=pl.String),
+    }
+    for name in SUMMARY_ORDER:
+        if name not in data:
+            values = cols[name][rows]
+            if name.startswith("n_"):
+                data[name] = pl.Series(values, dtype=pl.Int64)
+            else:
+                data[name] = pl.Series(values, dtype=pl.Float64).fill_nan(None)
+    return pl.DataFrame(data).select(SUMMARY_ORDER)
+
+
+def summary_frame(arrays: PeriodArrays, *, linking: str, periods_per_year: int) -> pl.DataFrame:
+    """One row per portfolio: its whole record linked (columns :data:`SUMMARY_ORDER`)."""
+    cols = window_totals(arrays, arrays.active, linking=linking, periods_per_year=periods_per_year)
+    rows = np.flatnonzero(cols["n_periods"] > 0)
+    return _frame(arrays, cols, rows, linking)
+
+
+def windows_frame(arrays: PeriodArrays, *, linking: str, periods_per_year: int) -> pl.DataFrame:
     """Summaries over trailing 1, 3, 5 and 10 years (where the record covers them) and over
     each calendar year the record touches (partial years included; ``n_periods`` tells).
 
     Each window is linked on its own, as if the record were only that window; the static
     weights stay those of the whole run (the decomposition is not redone per window).
     """
-    ppy = periods_per_year
-    ranked = periods.with_columns(
-        _from_end=pl.len().over(PID) - pl.int_range(pl.len()).over(PID, order_by="period_index"),
-        _n=pl.len().over(PID),
-    )
-    parts = []
+    active = arrays.active
+    n_active = active.sum(axis=1)
+    from_end = np.cumsum(active[:, ::-1], axis=1)[:, ::-1]  # 1 = the last active period
+    frames = []
     for years in (1, 3, 5, 10):
-        size = years * ppy
-        parts.append(
-            ranked.filter((pl.col("_n") >= size) & (pl.col("_from_end") <= size)).with_columns(
-                window=pl.lit(f"{years}y")
-            )
-        )
-    parts.append(ranked.with_columns(window=pl.col("period_end").dt.year().cast(pl.String)))
-    stacked = pl.concat(parts).drop("_from_end", "_n")
-    keys = [PID, "window"]
-    linked = link_cumulative(stacked, method=linking, effects=LINKED_EFFECTS, keys=keys)  # type: ignore[arg-type]
-    out = _totals(linked, keys, ppy).with_columns(linking=pl.lit(linking))
+        size = years * periods_per_year
+        mask = active & (from_end <= size) & (n_active[:, None] >= size)
+        cols = window_totals(arrays, mask, linking=linking, periods_per_year=periods_per_year)
+        rows = np.flatnonzero(cols["n_periods"] > 0)
+        frames.append(_frame(arrays, cols, rows, linking).with_columns(window=pl.lit(f"{years}y")))
+    year = arrays.period_ends.dt.year().to_numpy()
+    for y in np.unique(year):
+        mask = active & (year == y)[None, :]
+        cols = window_totals(arrays, mask, linking=linking, periods_per_year=periods_per_year)
+        rows = np.flatnonzero(cols["n_periods"] > 0)
+        frames.append(_frame(arrays, cols, rows, linking).with_columns(window=pl.lit(str(y))))
+    out = pl.concat(frames)
     order = [PID, "window", *[c for c in SUMMARY_ORDER if c != PID]]
-    trailing_first = pl.col("window").str.ends_with("y")
     return (
         out.select(order)
-        .with_columns(_kind=trailing_first.not_(), _len=pl.col("window").str.len_chars())
-        .sort(PID, "_kind", "_len", "window")
-        .drop("_kind", "_len")
+        .with_columns(
+            _calendar=~pl.col("window").str.ends_with("y"), _len=pl.col("window").str.len_chars()
+        )
+        .sort(PID, "_calendar", "_len", "window")
+        .drop("_calendar", "_len")
     )

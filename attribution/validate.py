@@ -17,6 +17,7 @@ import polars as pl
 
 from attribution.calendar import Calendar
 from attribution.errors import SharedTableError, examples
+from attribution.panel import Codes, duplicate_mask
 
 ISSUE_SCHEMA: dict[str, pl.DataType] = {
     "portfolio_id": pl.String(),
@@ -165,10 +166,20 @@ def _null_keys(frame: pl.DataFrame, table: str, keys: list[str]) -> pl.DataFrame
 
 
 def _duplicates(
-    frame: pl.DataFrame, table: str, keys: list[str], date_col: str, class_col: str | None
+    frame: pl.DataFrame,
+    table: str,
+    keys: list[str],
+    date_col: str,
+    class_col: str | None,
+    n_t: int,
+    n_k: int,
 ) -> pl.DataFrame:
     full = ["portfolio_id", *keys]
-    dup = frame.drop_nulls(full).filter(pl.len().over(full) > 1).unique(full).sort(full)
+    if "_t" in frame.columns:
+        mask = duplicate_mask(frame, n_t, n_k, with_class=class_col is not None)
+        dup = frame.filter(pl.Series(mask)).unique(full).sort(full)
+    else:
+        dup = frame.drop_nulls(full).filter(pl.len().over(full) > 1).unique(full).sort(full)
     return issue_rows(
         dup,
         code="duplicate_key",
@@ -224,10 +235,8 @@ def _too_low(frame: pl.DataFrame, table: str, class_col: str | None) -> pl.DataF
     )
 
 
-def _off_calendar(
-    frame: pl.DataFrame, table: str, date_col: str, allowed: pl.Series, hint: str
-) -> pl.DataFrame:
-    bad = frame.filter(pl.col(date_col).is_not_null() & ~pl.col(date_col).is_in(allowed))
+def _off_calendar(frame: pl.DataFrame, table: str, date_col: str, hint: str) -> pl.DataFrame:
+    bad = frame.filter(pl.col(date_col).is_not_null() & (pl.col("_t") < 0))
     bad = bad.unique(["portfolio_id", date_col]).sort("portfolio_id", date_col)
     return issue_rows(
         bad,
@@ -244,8 +253,8 @@ def _off_calendar(
     )
 
 
-def _unknown_class(frame: pl.DataFrame, table: str, classes: pl.Series) -> pl.DataFrame:
-    bad = frame.filter(pl.col("asset_class").is_not_null() & ~pl.col("asset_class").is_in(classes))
+def _unknown_class(frame: pl.DataFrame, table: str, classes: tuple[str, ...]) -> pl.DataFrame:
+    bad = frame.filter(pl.col("asset_class").is_not_null() & (pl.col("_k") < 0))
     bad = bad.unique(["portfolio_id", "asset_class"]).sort("portfolio_id", "asset_class")
     return issue_rows(
         bad,
@@ -255,7 +264,7 @@ def _unknown_class(frame: pl.DataFrame, table: str, classes: pl.Series) -> pl.Da
             pl.lit(table),
             "portfolio_id",
             pl.col("asset_class"),
-            pl.lit(", ".join(sorted(classes.to_list()))),
+            pl.lit(", ".join(classes)),
         ),
         asset_class="asset_class",
     )
@@ -288,46 +297,43 @@ def _not_summing(frame: pl.DataFrame, table: str, date_col: str, tolerance: floa
 def check_portfolio_tables(
     tables: dict[str, pl.DataFrame | None],
     calendar: Calendar,
+    codes: Codes,
     *,
     weight_tolerance: float,
 ) -> pl.DataFrame:
-    """Apply every portfolio-level rule and return the ``data_issues`` rows found.
+    """Apply every portfolio-level rule to encoded tables and return the issues found.
 
+    The tables carry the ``_p``/``_t``/``_k`` codes of :func:`attribution.panel.encode`.
     Rules and codes are listed in :data:`ISSUE_CODES`. Holdings dates must be calendar
     period ends or the first period's start; return dates must be calendar period ends.
+    Portfolios that appear only outside holdings are found by :func:`orphan_issues`.
     """
     holdings = tables["holdings"]
     policy = tables["policy"]
-    index_returns = tables["index_returns"]
     assert holdings is not None
     assert policy is not None
-    assert index_returns is not None
-    classes = index_returns["asset_class"].unique()
-    ends = pl.Series(list(calendar.period_ends), dtype=pl.Date)
-    holding_dates = pl.concat([pl.Series([calendar.first_start], dtype=pl.Date), ends])
+    n_t, n_k = codes.n_periods + 1, len(codes.classes)
     found: list[pl.DataFrame] = []
-
     h_keys = ["as_of", "asset_class"]
     found += [
         _null_keys(holdings, "holdings", h_keys),
-        _duplicates(holdings, "holdings", h_keys, "as_of", "asset_class"),
+        _duplicates(holdings, "holdings", h_keys, "as_of", "asset_class", n_t, n_k),
         _nonfinite(holdings, "holdings", "weight", "as_of", "asset_class"),
         _off_calendar(
             holdings,
             "holdings",
             "as_of",
-            holding_dates,
             "a period_end or the first period's start " + str(calendar.first_start),
         ),
-        _unknown_class(holdings, "holdings", classes),
+        _unknown_class(holdings, "holdings", codes.classes),
         _not_summing(holdings, "holdings", "as_of", weight_tolerance),
     ]
     p_keys = ["effective_from", "asset_class"]
     found += [
         _null_keys(policy, "policy", p_keys),
-        _duplicates(policy, "policy", p_keys, "effective_from", "asset_class"),
+        _duplicates(policy, "policy", p_keys, "effective_from", "asset_class", n_t, n_k),
         _nonfinite(policy, "policy", "weight", "effective_from", "asset_class"),
-        _unknown_class(policy, "policy", classes),
+        _unknown_class(policy, "policy", codes.classes),
         _not_summing(policy, "policy", "effective_from", weight_tolerance),
     ]
     segments = tables.get("segment_returns")
@@ -335,40 +341,45 @@ def check_portfolio_tables(
         s_keys = ["period_end", "asset_class"]
         found += [
             _null_keys(segments, "segment_returns", s_keys),
-            _duplicates(segments, "segment_returns", s_keys, "period_end", "asset_class"),
+            _duplicates(segments, "segment_returns", s_keys, "period_end", "asset_class", n_t, n_k),
             _nonfinite(segments, "segment_returns", "return", "period_end", "asset_class"),
             _too_low(segments, "segment_returns", "asset_class"),
-            _off_calendar(segments, "segment_returns", "period_end", ends, "a period_end"),
-            _unknown_class(segments, "segment_returns", classes),
+            _off_calendar(segments, "segment_returns", "period_end", "a period_end"),
+            _unknown_class(segments, "segment_returns", codes.classes),
         ]
     reported = tables.get("portfolio_returns")
     if reported is not None:
         found += [
             _null_keys(reported, "portfolio_returns", ["period_end"]),
-            _duplicates(reported, "portfolio_returns", ["period_end"], "period_end", None),
+            _duplicates(
+                reported, "portfolio_returns", ["period_end"], "period_end", None, n_t, n_k
+            ),
             _nonfinite(reported, "portfolio_returns", "return", "period_end", None),
             _too_low(reported, "portfolio_returns", None),
-            _off_calendar(reported, "portfolio_returns", "period_end", ends, "a period_end"),
+            _off_calendar(reported, "portfolio_returns", "period_end", "a period_end"),
         ]
-    held = holdings["portfolio_id"].unique()
-    others = [t for t in (policy, segments, reported) if t is not None]
+    return pl.concat([empty_issues(), *found], how="vertical")
+
+
+def orphan_issues(held: pl.Series, others: list[pl.Series]) -> pl.DataFrame:
+    """``no_holdings`` warnings for portfolios present in other tables but not in holdings."""
+    if not others:
+        return empty_issues()
     orphans = (
-        pl.concat([t.select("portfolio_id") for t in others])
+        pl.concat([o.alias("portfolio_id") for o in others])
         .unique()
-        .filter(~pl.col("portfolio_id").is_in(held))
+        .to_frame()
+        .filter(~pl.col("portfolio_id").is_in(held.implode()))
         .sort("portfolio_id")
     )
-    found.append(
-        issue_rows(
-            orphans,
-            code="no_holdings",
-            message=pl.format(
-                "portfolio {} appears in other tables but has no holdings; it is not evaluated.",
-                "portfolio_id",
-            ),
-        )
+    return issue_rows(
+        orphans,
+        code="no_holdings",
+        message=pl.format(
+            "portfolio {} appears in other tables but has no holdings; it is not evaluated.",
+            "portfolio_id",
+        ),
     )
-    return pl.concat([empty_issues(), *found], how="vertical")
 
 
 def skipped_portfolios(issues: pl.DataFrame) -> pl.Series:
