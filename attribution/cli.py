@@ -139,7 +139,9 @@ def _split(params: dict[str, Any]) -> tuple[dict[str, Any], RunOptions]:
 
 
 def _console(quiet: bool = False) -> Console:
-    return Console(stderr=False, quiet=quiet, highlight=False, soft_wrap=False)
+    # Outside a terminal (logs, pipes) rich would wrap at 80 columns; tables need more room.
+    width = None if sys.stdout.isatty() else 160
+    return Console(stderr=False, quiet=quiet, highlight=False, soft_wrap=False, width=width)
 
 
 def _pct(value: Any) -> str:
