@@ -28,7 +28,7 @@ from rich.table import Table
 from attribution import __version__
 from attribution.errors import OptionError, ReadError, TiltauditError
 from attribution.options import RunOptions
-from attribution.runner import RunResult, run_roster
+from attribution.runner import RunResult, prepare, run_roster
 
 CAUTIONS = (
     "Cautions: statistical evidence is not proof of skill; short records have little power; "
@@ -119,11 +119,14 @@ def _merged(ctx: click.Context, params: dict[str, Any]) -> dict[str, Any]:
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         msg = f"config: {str(path)!r} is not valid TOML ({exc})."
         raise ReadError(msg) from exc
-    unknown = sorted(set(config) - set(params))
+    # One job file serves run and validate alike: validate has no --out and ignores it.
+    unknown = sorted(set(config) - set(params) - {"out"})
     if unknown:
         msg = f"config: unknown key(s) {unknown} in {str(path)!r}; known keys: {sorted(params)}."
         raise OptionError(msg)
     for key, value in config.items():
+        if key not in params:
+            continue
         if ctx.get_parameter_source(key) in (ParameterSource.DEFAULT, None):
             if key in dict(INPUT_FLAGS) or key == "out":
                 # Relative paths in a config file are read from the file's folder.
@@ -190,9 +193,10 @@ def execute_run(
     from attribution.decompose import EFFECTS_ORDER
     from attribution.outputs import ParquetAppender, StagedOutput, output_lock, sha256_of
 
+    prepared = prepare(sources, options)  # bad input fails here, before anything is written
     with output_lock(out_dir), StagedOutput(out_dir) as staged:
         effects = ParquetAppender(staged.path("effects.parquet"))
-        result = run_roster(sources, options, effects_sink=effects)
+        result = run_roster(prepared, options, effects_sink=effects)
         effects.close(empty_schema=dict.fromkeys(EFFECTS_ORDER, pl.Float64()))
         inputs = {}
         for name, src in sources.items():

@@ -146,8 +146,25 @@ def _sort_issues(issues: pl.DataFrame) -> pl.DataFrame:
     )
 
 
+@dataclass(frozen=True)
+class Prepared:
+    """Opened readers and the checked shared tables: what is known before any shard runs."""
+
+    readers: dict[str, TableReader]
+    shared: SharedInputs
+
+
+def prepare(sources: Mapping[str, TableSource | None], options: RunOptions) -> Prepared:
+    """Open every input and check the shared tables; raises on whole-input problems.
+
+    Done before the output folder is touched, so bad input (exit 2) writes nothing.
+    """
+    readers = open_readers(sources)
+    return Prepared(readers=readers, shared=load_shared(readers, options))
+
+
 def run_roster(
-    sources: Mapping[str, TableSource | None],
+    sources: Mapping[str, TableSource | None] | Prepared,
     options: RunOptions,
     *,
     shard_size: int = DEFAULT_SHARD_SIZE,
@@ -160,8 +177,8 @@ def run_roster(
     """
     timings: dict[str, float] = {"read_and_validate": 0.0, "decompose": 0.0, "summarise": 0.0}
     clock = time.perf_counter()
-    readers = open_readers(sources)
-    shared = load_shared(readers, options)
+    prepared = sources if isinstance(sources, Prepared) else prepare(sources, options)
+    readers, shared = prepared.readers, prepared.shared
     held = readers["holdings"].portfolio_ids()
     if held.len() == 0:
         msg = "holdings: the table has no rows; expected at least one portfolio's weights."
