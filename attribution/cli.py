@@ -9,7 +9,6 @@ underscores.
 
 from __future__ import annotations
 
-import datetime as dt
 import functools
 import sys
 import tempfile
@@ -190,49 +189,25 @@ def execute_run(
     sources: dict[str, Any], options: RunOptions, out_dir: Path, *, started: float
 ) -> RunResult:
     """Run the roster and write its outputs atomically under the folder's lock."""
+    from attribution.api import build_manifest, file_hashes
     from attribution.decompose import EFFECTS_ORDER
-    from attribution.outputs import ParquetAppender, StagedOutput, output_lock, sha256_of
+    from attribution.outputs import ParquetAppender, StagedOutput, output_lock
 
     prepared = prepare(sources, options)  # bad input fails here, before anything is written
     with output_lock(out_dir), StagedOutput(out_dir) as staged:
         effects = ParquetAppender(staged.path("effects.parquet"))
         result = run_roster(prepared, options, effects_sink=effects)
         effects.close(empty_schema=dict.fromkeys(EFFECTS_ORDER, pl.Float64()))
-        inputs = {}
-        for name, src in sources.items():
-            if isinstance(src, str | Path):
-                path = Path(src)
-                inputs[name] = {"path": str(path.resolve()), "sha256": sha256_of(path)}
-        issues = result.data_issues
         tables = result.tables()
         counts = {name: frame.height for name, frame in tables.items()}
         counts["effects"] = effects.rows
-        timings = dict(result.timings)
-        manifest = {
-            "tool": "tiltaudit",
-            "version": __version__,
-            "engine": "local",
-            "inputs": inputs,
-            "options": options.to_dict(),
-            "calendar": {
-                "first_period": str(result.calendar.period_ends[0]),
-                "last_period": str(result.calendar.period_ends[-1]),
-                "frequency": result.calendar.frequency,
-                "periods_per_year": result.calendar.periods_per_year,
-            },
-            "counts": {
-                "portfolios_run": result.summary.height,
-                "portfolios_skipped": len(result.skipped),
-                "issues_error": issues.filter(issues["severity"] == "error").height,
-                "issues_warning": issues.filter(issues["severity"] == "warning").height,
-            },
-            "exit_code": result.exit_code,
-            "finished_at": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
-            "timings_seconds": timings,
-        }
+        manifest = build_manifest(result, sources, hashes=file_hashes(sources))
+        timings = manifest["timings_seconds"]
         clock = time.perf_counter()
         timings["write_started"] = clock - started
-        staged.commit(tables, manifest=manifest, row_counts=counts)
+        staged.commit(
+            tables, manifest=manifest, row_counts=counts, extra_files=result.extra_files()
+        )
     return result
 
 

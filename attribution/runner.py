@@ -10,9 +10,12 @@ order DESIGN §2–§5 asks for and records what happened.
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
 
 import polars as pl
 
@@ -69,6 +72,49 @@ class RunResult:
     skipped: tuple[str, ...]
     timings: dict[str, float] = field(default_factory=dict)
     extra_tables: dict[str, pl.DataFrame] = field(default_factory=dict)
+    notes: tuple[str, ...] = ()
+    sources: dict[str, Any] = field(default_factory=dict, repr=False)
+
+    def with_sources(self, sources: Mapping[str, Any]) -> RunResult:
+        """The same result remembering its inputs (for the manifest of :meth:`write`)."""
+        return dataclasses.replace(self, sources=dict(sources))
+
+    def extra_files(self) -> dict[str, bytes]:
+        """Files written beside the tables (the review pack)."""
+        return {}
+
+    def write(self, out_dir: str | Path) -> Path:
+        """Write every table, results.duckdb and manifest.json into ``out_dir`` atomically,
+        exactly as ``tiltaudit run`` does."""
+        from attribution.api import write_result
+
+        return write_result(self, out_dir, self.sources)
+
+    def _repr_html_(self) -> str:
+        """A compact notebook view: the summary table and the data issues."""
+        import html
+
+        cols = ["portfolio_id", "n_periods", "return_source", "active_return"]
+        cols += ["static_allocation", "timing", "selection", "residual"]
+        cols += [c for c in ("timing_evidence",) if c in self.summary.columns]
+        head = "".join(f"<th>{html.escape(c)}</th>" for c in cols)
+        rows = []
+        for row in self.summary.select(cols).iter_rows():
+            cells = []
+            for value in row:
+                text = f"{value:+.4%}" if isinstance(value, float) else str(value)
+                cells.append(f"<td>{html.escape(text)}</td>")
+            rows.append("<tr>" + "".join(cells) + "</tr>")
+        n_issues = self.data_issues.height
+        return (
+            f"<div><strong>tiltaudit</strong>: {self.summary.height} portfolio(s) run, "
+            f"{len(self.skipped)} skipped, {n_issues} data issue(s); linking "
+            f"{html.escape(self.options.linking)}."
+            f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+            "<small>Statistical evidence is not proof of skill; short records have little "
+            "power; past results do not guarantee future ones; not investment advice.</small>"
+            "</div>"
+        )
 
     @property
     def exit_code(self) -> int:
