@@ -73,6 +73,7 @@ def file_hashes(sources: dict[str, Any]) -> dict[str, dict[str, str]]:
 def write_result(result: RunResult, out_dir: str | Path, sources: dict[str, Any]) -> Path:
     """Write an in-memory result as the command line would: atomically, under the lock."""
     from attribution.outputs import StagedOutput, output_lock
+    from attribution.report import build_report
 
     out = Path(out_dir)
     manifest = build_manifest(result, sources, hashes=file_hashes(sources))
@@ -82,7 +83,7 @@ def write_result(result: RunResult, out_dir: str | Path, sources: dict[str, Any]
             tables,
             manifest=manifest,
             row_counts={name: frame.height for name, frame in tables.items()},
-            extra_files=result.extra_files(),
+            extra_files={"report.html": build_report(tables, manifest=manifest).encode("utf-8")},
         )
 
 

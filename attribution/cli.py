@@ -192,6 +192,7 @@ def execute_run(
     from attribution.api import build_manifest, file_hashes
     from attribution.decompose import EFFECTS_ORDER
     from attribution.outputs import ParquetAppender, StagedOutput, output_lock
+    from attribution.report import build_report
 
     prepared = prepare(sources, options)  # bad input fails here, before anything is written
     with output_lock(out_dir), StagedOutput(out_dir) as staged:
@@ -205,8 +206,15 @@ def execute_run(
         timings = manifest["timings_seconds"]
         clock = time.perf_counter()
         timings["write_started"] = clock - started
+        report = build_report(
+            {**tables, "effects": pl.scan_parquet(staged.path("effects.parquet"))},
+            manifest=manifest,
+        )
         staged.commit(
-            tables, manifest=manifest, row_counts=counts, extra_files=result.extra_files()
+            tables,
+            manifest=manifest,
+            row_counts=counts,
+            extra_files={"report.html": report.encode("utf-8")},
         )
     return result
 
@@ -307,6 +315,41 @@ def simulate(out: str, **params: Any) -> None:
     paths = write_simulated_roster(Path(out), **params)
     for name, path in paths.items():
         click.echo(f"{name}: {path}")
+
+
+@main.command()
+@click.option(
+    "--results",
+    required=True,
+    type=click.Path(file_okay=False),
+    help="Output folder of an earlier run.",
+)
+@click.option("--out", "out_file", type=click.Path(dir_okay=False), help="Default DIR/report.html.")
+@click.option("--portfolio", "portfolios", multiple=True, help="Detail pages for these ids only.")
+@click.option("--max-detail", type=click.IntRange(0), default=50, show_default=True)
+@handle_errors
+def report(
+    results: str, out_file: str | None, portfolios: tuple[str, ...], max_detail: int
+) -> None:
+    """Rebuild report.html from the stored tables of a run (nothing is recomputed)."""
+    import os
+
+    from attribution.outputs import output_lock
+    from attribution.report import build_report_from_folder
+
+    folder = Path(results)
+    if not folder.is_dir():
+        msg = f"report: results folder {str(folder)!r} does not exist."
+        raise ReadError(msg)
+    target = Path(out_file) if out_file else folder / "report.html"
+    with output_lock(folder):
+        html = build_report_from_folder(
+            folder, portfolios=list(portfolios) or None, max_detail=max_detail
+        )
+        partial = target.with_name(f".{target.name}.partial")
+        partial.write_text(html, encoding="utf-8")
+        os.replace(partial, target)
+    click.echo(f"report: {target}")
 
 
 def entry() -> None:  # pragma: no cover - thin wrapper for python -m

@@ -79,10 +79,6 @@ class RunResult:
         """The same result remembering its inputs (for the manifest of :meth:`write`)."""
         return dataclasses.replace(self, sources=dict(sources))
 
-    def extra_files(self) -> dict[str, bytes]:
-        """Files written beside the tables (the review pack)."""
-        return {}
-
     def write(self, out_dir: str | Path) -> Path:
         """Write every table, results.duckdb and manifest.json into ``out_dir`` atomically,
         exactly as ``tiltaudit run`` does."""
@@ -181,9 +177,7 @@ def open_readers(sources: Mapping[str, TableSource | None]) -> dict[str, TableRe
             flag = "--" + table.replace("_", "-")
             msg = f"{table}: this table is required (give it with {flag})."
             raise ReadError(msg)
-    return {
-        name: TableReader(src, name) for name, src in sources.items() if src is not None
-    }
+    return {name: TableReader(src, name) for name, src in sources.items() if src is not None}
 
 
 def _sort_issues(issues: pl.DataFrame) -> pl.DataFrame:
