@@ -241,7 +241,8 @@ def run(ctx: click.Context, quiet: bool, **params: Any) -> None:
         raise OptionError("The 'out' option is required: give the output folder with --out.")
     sources, options = _split(params)
     result = execute_run(sources, options, Path(out), started=started)
-    print_summary(result, _console(quiet), Path(out).resolve())
+    if not quiet:  # rendering the table for a quiet console still costs seconds on a roster
+        print_summary(result, _console(), Path(out).resolve())
     sys.exit(result.exit_code)
 
 
@@ -350,6 +351,85 @@ def report(
         partial.write_text(html, encoding="utf-8")
         os.replace(partial, target)
     click.echo(f"report: {target}")
+
+
+@main.command()
+@click.option("--periods", type=click.IntRange(2), help="Record length in periods.")
+@click.option("--hit-rate", type=float, help="A timer's hit rate (share of right calls).")
+@click.option("--correlation", type=float, help="Correlation of exposure with the market.")
+@click.option("--timing-return", type=float, help="Annual timing return (0.01 = 1 %).")
+@click.option("--timing-volatility", type=float, help="Annual volatility of the timing return.")
+@click.option("--periods-per-year", type=click.IntRange(1), default=12, show_default=True)
+@click.option("--power", "power_level", type=float, default=0.8, show_default=True)
+@click.option("--alpha", type=float, default=0.05, show_default=True)
+@handle_errors
+def power(
+    periods: int | None,
+    hit_rate: float | None,
+    correlation: float | None,
+    timing_return: float | None,
+    timing_volatility: float | None,
+    periods_per_year: int,
+    power_level: float,
+    alpha: float,
+) -> None:
+    """How long a record must be to detect a timing skill, and the smallest skill a record
+    of --periods can detect (one-sided tests at --alpha with --power)."""
+    from attribution.power import power_summary
+
+    if all(v is None for v in (periods, hit_rate, correlation, timing_return)):
+        msg = (
+            "power: give a record length (--periods) and/or a skill (--hit-rate, "
+            "--correlation, --timing-return with --timing-volatility)."
+        )
+        raise OptionError(msg)
+    answer = power_summary(
+        periods=periods,
+        hit_rate=hit_rate,
+        correlation=correlation,
+        timing_return_ann=timing_return,
+        timing_volatility_ann=timing_volatility,
+        periods_per_year=periods_per_year,
+        power=power_level,
+        alpha=alpha,
+    )
+    console = _console()
+    table = Table(title=f"power {answer.power:.0%} at one-sided {answer.alpha:g}", box=None)
+    table.add_column("question")
+    table.add_column("answer", justify="right")
+
+    def show(value: object, fmt: str) -> str:
+        return "not reachable / not given" if value is None else format(value, fmt)
+
+    if hit_rate is not None:
+        table.add_row(
+            f"periods needed, hit rate {hit_rate:.0%}", show(answer.periods_needed_hit_rate, "d")
+        )
+    if correlation is not None:
+        table.add_row(
+            f"periods needed, correlation {correlation:g}",
+            show(answer.periods_needed_correlation, "d"),
+        )
+    if timing_return is not None:
+        table.add_row(
+            f"periods needed, timing return {timing_return:.2%}/yr",
+            show(answer.periods_needed_timing_return, "d"),
+        )
+    if periods is not None:
+        table.add_row(
+            f"smallest hit rate detectable in {periods} periods",
+            show(answer.detectable_hit_rate, ".3f"),
+        )
+        table.add_row(
+            f"smallest correlation detectable in {periods} periods",
+            show(answer.detectable_correlation, ".3f"),
+        )
+        table.add_row(
+            f"smallest timing return detectable in {periods} periods (per year)",
+            show(answer.detectable_timing_return_ann, ".2%"),
+        )
+    console.print(table)
+    console.print(CAUTIONS)
 
 
 def entry() -> None:  # pragma: no cover - thin wrapper for python -m

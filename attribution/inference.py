@@ -1,10 +1,11 @@
-"""Inference kernels batched across a roster: least squares with Newey–West errors, exact and
-asymptotic sign tests, multiple-testing control, and the resampling schemes.
+"""Closed-form inference kernels batched across a roster: least squares with Newey–West errors,
+exact and asymptotic sign tests, multiple-testing control. (Resampling: :mod:`attribution.
+resampling`.)
 
 Every function works on padded arrays: one row per portfolio, observations left-aligned in
 time order, and a boolean ``mask`` (or a count ``n_obs``) saying which entries are real. Padding
 entries may hold anything (NaN included); they never reach a result. Nothing here loops over
-portfolios in Python: loops run over lags, resampling groups or memory chunks only.
+portfolios in Python: loops run over lags only.
 
 Sources are named in each docstring; the check values are in ``METHODS.md`` §10 and the tests.
 """
@@ -14,7 +15,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse
 from scipy.special import gammaln
 from scipy.stats import norm
 
@@ -88,22 +88,23 @@ def ols_newey_west(
 
     q, r = np.linalg.qr(xm)
     diag = np.abs(np.diagonal(r, axis1=1, axis2=2))
-    scale = np.sqrt(np.einsum("pnk,pnk->pk", xm, xm))
+    scale = np.sqrt((xm * xm).sum(axis=1))
     full_rank = np.all(diag > _RANK_TOL * np.maximum(scale, np.finfo(float).tiny), axis=1)
     # Rank-deficient portfolios get an identity R so the solve is harmless; their outputs are NaN.
     eye = np.eye(r.shape[1])
     r_safe = np.where(full_rank[:, None, None], r, eye)
-    qty = np.einsum("pnk,pn->pk", q, ym)
+    qty = (np.swapaxes(q, 1, 2) @ ym[..., None])[..., 0]
     coef = np.linalg.solve(r_safe, qty[..., None])[..., 0]
     r_inv = np.linalg.inv(r_safe)
     xtx_inv = r_inv @ np.swapaxes(r_inv, 1, 2)
 
-    resid = np.where(mask, ym - np.einsum("pnk,pk->pn", xm, coef), 0.0)
+    resid = np.where(mask, ym - (xm @ coef[..., None])[..., 0], 0.0)
     g = xm * resid[..., None]
-    meat = np.einsum("pnk,pnl->pkl", g, g)
+    g_t = np.swapaxes(g, 1, 2)
+    meat = g_t @ g
     for j in range(1, int(lag.max(initial=0)) + 1):
         weight = np.where(lag >= j, 1.0 - j / (lag + 1.0), 0.0)
-        gamma = np.einsum("pnk,pnl->pkl", g[:, j:], g[:, :-j])
+        gamma = g_t[:, :, j:] @ g[:, :-j]
         meat += weight[:, None, None] * (gamma + np.swapaxes(gamma, 1, 2))
     cov = xtx_inv @ meat @ xtx_inv
     se = np.sqrt(np.maximum(np.diagonal(cov, axis1=1, axis2=2), 0.0))
@@ -288,220 +289,6 @@ def storey_pi0(p_values: FloatArray, *, lam: float = 0.5) -> float:
     return float(min(1.0, np.count_nonzero(p > lam) / (p.size * (1.0 - lam))))
 
 
-def politis_white_block_length(series: FloatArray, n_obs: IntArray) -> FloatArray:
-    """Stationary-bootstrap mean block length by the Politis & White (2004) rule, per row.
-
-    Uses ``arch.bootstrap.optimal_block_length`` (which includes the Patton, Politis & White
-    2009 correction; METHODS §8.2) on each row's first ``n_obs`` values, one call per distinct
-    length. Rows with fewer than 3 observations or no variation get 1 (no dependence to keep).
-    """
-    from arch.bootstrap import optimal_block_length
-
-    values = np.asarray(series, dtype=float)
-    n = np.asarray(n_obs, dtype=np.int64)
-    out = np.ones(values.shape[0])
-    for length in np.unique(n):
-        if length < 3:
-            continue
-        rows = np.flatnonzero(n == length)
-        block = values[rows, :length]
-        varies = np.ptp(block, axis=1) > 0
-        if not varies.any():
-            continue
-        est = optimal_block_length(block[varies].T)["stationary"].to_numpy()
-        out[rows[varies]] = np.where(np.isfinite(est), est, 1.0)
-    return out
-
-
-def rounded_block_length(block: FloatArray, n_obs: IntArray) -> IntArray:
-    """Mean block length rounded to a whole number of periods, between 1 and n/2.
-
-    Rounding lets portfolios with the same record length share one index matrix; the cap keeps
-    a block from spanning most of a short record (common practice, no source).
-    """
-    b = np.rint(np.asarray(block, dtype=float))
-    cap = np.maximum(np.asarray(n_obs) // 2, 1)
-    return np.clip(b, 1, cap).astype(np.int64)
-
-
-def stationary_bootstrap_indices(
-    n: int, mean_block: float, draws: int, rng: np.random.Generator
-) -> IntArray:
-    """Index matrix (draws, n) of the Politis & Romano (1994) stationary bootstrap.
-
-    Each resampled series is a run of blocks: a block starts at a uniform random index and
-    continues with probability 1 − 1/b at each step (geometric lengths, mean b), wrapping
-    circularly, until n indices are drawn (METHODS §8.2). Vectorised: index_t = (U_s + t − s)
-    mod n, where s ≤ t is the most recent block start.
-    """
-    if n <= 0:
-        return np.zeros((draws, 0), dtype=np.int64)
-    starts = rng.integers(0, n, size=(draws, n))
-    new_block = rng.random((draws, n)) < 1.0 / max(float(mean_block), 1.0)
-    new_block[:, 0] = True
-    t = np.arange(n)
-    last_start = np.maximum.accumulate(np.where(new_block, t, 0), axis=1)
-    first = np.take_along_axis(starts, last_start, axis=1)
-    return (first + t - last_start) % n
-
-
-def _group_rng(seed: int, stream: int, n: int, block: int) -> np.random.Generator:
-    # One generator per (purpose, length, block) so a portfolio's draws depend only on the seed
-    # and its own group, never on which other portfolios share the roster.
-    return np.random.default_rng([seed, stream, n, block])
-
-
-def bootstrap_means(
-    series: FloatArray, n_obs: IntArray, block: IntArray, *, draws: int, seed: int, stream: int
-) -> FloatArray:
-    """Stationary-bootstrap replicates of each row's mean, shape (P, draws).
-
-    Rows sharing a length and a (whole-number) mean block length share one index matrix; a
-    replicate is mean_t series[π(t)] = (1/n) Σ_s c_s series_s with c_s the count of s in π, so
-    each group costs one matrix product.
-    """
-    values = np.asarray(series, dtype=float)
-    out = np.full((values.shape[0], draws), np.nan)
-    for n, b, rows in _groups(n_obs, block):
-        idx = stationary_bootstrap_indices(n, b, draws, _group_rng(seed, stream, n, b))
-        counts = np.zeros((draws, n))
-        np.add.at(counts, (np.repeat(np.arange(draws), n), idx.ravel()), 1.0)
-        out[rows] = values[rows, :n] @ counts.T / n
-    return out
-
-
-def placebo_means(
-    deviation: FloatArray,
-    relative_return: FloatArray,
-    n_obs: IntArray,
-    block: IntArray,
-    *,
-    draws: int,
-    seed: int,
-    stream: int,
-    chunk_cells: int = 16_000_000,
-) -> FloatArray:
-    """Mean timing effect of random timers that keep the weight path, shape (P, draws).
-
-    Replicate: (1/n) Σ_t Σ_i d_{t,i} r_{π(t),i}, where d are the portfolio's weight deviations
-    (kept in their time order), r the class returns relative to the policy return, and π a
-    stationary-bootstrap index path (Politis & Romano 1994) of the portfolio's own periods:
-    the same decisions meet the returns in a resampled time order, which keeps the weight path's
-    persistence and the returns' own dependence but breaks any link between the two.
-
-    Computed as (1/n) Σ_t G[t, π(t)] with G = d rᵀ (n × n per portfolio), read through a sparse
-    selection matrix shared by every portfolio of the same (length, block) group.
-    """
-    d_all = np.asarray(deviation, dtype=float)
-    r_all = np.asarray(relative_return, dtype=float)
-    out = np.full((d_all.shape[0], draws), np.nan)
-    for n, b, rows in _groups(n_obs, block):
-        idx = stationary_bootstrap_indices(n, b, draws, _group_rng(seed, stream, n, b))
-        cols = (np.arange(n)[None, :] * n + idx).ravel()
-        select = scipy.sparse.csc_matrix(
-            (np.full(cols.size, 1.0 / n), (cols, np.repeat(np.arange(draws), n))),
-            shape=(n * n, draws),
-        )
-        per_chunk = max(1, chunk_cells // (n * n))
-        for start in range(0, rows.size, per_chunk):
-            part = rows[start : start + per_chunk]
-            # A contiguous right operand keeps the stacked product on the BLAS path (10x faster).
-            r_t = np.ascontiguousarray(np.swapaxes(r_all[part, :n], 1, 2))
-            gram = np.matmul(np.ascontiguousarray(d_all[part, :n]), r_t)
-            out[part] = gram.reshape(part.size, n * n) @ select
-    return out
-
-
-def _groups(n_obs: IntArray, block: IntArray) -> list[tuple[int, int, IntArray]]:
-    n = np.asarray(n_obs, dtype=np.int64)
-    b = np.asarray(block, dtype=np.int64)
-    keys = np.stack([n, b], axis=1)
-    groups = []
-    for key in np.unique(keys[n > 0], axis=0):
-        rows = np.flatnonzero((n == key[0]) & (b == key[1]))
-        groups.append((int(key[0]), int(key[1]), rows))
-    return groups
-
-
-def resampling_pvalues(
-    observed: FloatArray, replicates: FloatArray
-) -> tuple[FloatArray, FloatArray]:
-    """Monte-Carlo p-values (1 + #{replicate ≥ observed}) / (1 + draws), and the ≤ side.
-
-    The +1 counts the observed statistic as one draw from the null, so the test is exact in the
-    randomisation sense (Davison & Hinkley 1997, eq. 4.11 [from memory]). Replicates within a
-    relative 1e-12 of the observed value count as ties, so floating-point noise in sums that are
-    equal in exact arithmetic cannot decide a p-value (common practice, no source).
-    """
-    obs = np.asarray(observed, dtype=float)[:, None]
-    reps = np.asarray(replicates, dtype=float)
-    tol = 1e-12 * np.maximum(np.abs(obs), np.nanmax(np.abs(reps), axis=1, initial=0.0)[:, None])
-    draws = reps.shape[1]
-    upper = (1.0 + np.count_nonzero(reps >= obs - tol, axis=1)) / (1.0 + draws)
-    lower = (1.0 + np.count_nonzero(reps <= obs + tol, axis=1)) / (1.0 + draws)
-    bad = np.isnan(obs[:, 0]) | np.isnan(reps).any(axis=1)
-    return np.where(bad, np.nan, upper), np.where(bad, np.nan, lower)
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class WildBootstrap:
-    """Restricted wild-bootstrap null distribution of one coefficient.
-
-    estimate : (P,) the unrestricted coefficient.
-    replicates : (P, draws) its values under the null, the coefficient set to 0.
-    p_value, p_value_adverse : (P,) one-sided Monte-Carlo p-values, upper and lower side.
-    std_error : (P,) standard deviation of the replicates.
-    """
-
-    estimate: FloatArray
-    replicates: FloatArray
-    p_value: FloatArray
-    p_value_adverse: FloatArray
-    std_error: FloatArray
-
-
-def wild_bootstrap_coefficient(
-    y: FloatArray,
-    x: FloatArray,
-    mask: BoolArray,
-    *,
-    column: int,
-    draws: int,
-    rng: np.random.Generator,
-) -> WildBootstrap:
-    """Wild bootstrap of one regression coefficient under its null, batched.
-
-    Restricted model: y on x without ``column``, residuals ũ. Bootstrap samples
-    y* = X_r b̃_r + ũ ⊙ η with Rademacher signs η (Liu 1988; Mammen 1993; Davidson & Flachaire
-    2008 recommend restricted residuals with Rademacher weights [from memory]). The coefficient
-    is linear in y, γ̂ = c'y with c the ``column`` row of (X'X)^{-1}X', and c'X_r = 0, so every
-    replicate is γ̂* = c'(ũ ⊙ η): one matrix product (P, N) @ (N, draws) for the whole roster,
-    with one sign matrix shared by all portfolios (row t of it always serves observation t,
-    whatever the roster's longest record). The scheme keeps each observation's own variance,
-    which is what the fat-tailed x² and max(x, 0) regressors of the return-based timing tests
-    need (their Newey–West t-tests over-reject coin-flippers on real data).
-    """
-    mask = np.asarray(mask, dtype=bool)
-    xm = np.where(mask[..., None], x, 0.0)
-    ym = np.where(mask, y, 0.0)
-    keep = [j for j in range(xm.shape[2]) if j != column]
-    restricted = ols_newey_west(ym, xm[..., keep], mask, lag=np.zeros(ym.shape[0], np.int64))
-    full = ols_newey_west(ym, xm, mask, lag=np.zeros(ym.shape[0], np.int64))
-    c = np.einsum("pk,pnk->pn", full.xtx_inv[:, column, :], xm)
-    estimate = full.coef[:, column]
-    signs = np.where(rng.random((ym.shape[1], draws)) < 0.5, -1.0, 1.0)
-    replicates = (c * restricted.residual) @ signs
-    replicates = replicates + 0.0 * estimate[:, None]  # NaN-propagate rank-deficient rows
-    p_up, p_down = resampling_pvalues(estimate, replicates)
-    return WildBootstrap(
-        estimate=estimate,
-        replicates=replicates,
-        p_value=p_up,
-        p_value_adverse=p_down,
-        std_error=np.std(replicates, axis=1),
-    )
-
-
 def compact(valid: BoolArray, *arrays: FloatArray) -> tuple[BoolArray, list[FloatArray]]:
     """Left-align the valid entries of each row, keeping their order.
 
@@ -510,7 +297,7 @@ def compact(valid: BoolArray, *arrays: FloatArray) -> tuple[BoolArray, list[Floa
     trailing dimensions after (P, N).
     """
     valid = np.asarray(valid, dtype=bool)
-    n_rows, width = valid.shape
+    n_rows = valid.shape[0]
     n_new = valid.sum(axis=1)
     new_width = int(n_new.max(initial=0))
     rows, cols = np.nonzero(valid)
