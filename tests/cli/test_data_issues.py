@@ -24,8 +24,10 @@ Frames = dict[str, pl.DataFrame]
 BAD = "P2"  # the portfolio every case damages
 MARCH = dt.date(2020, 3, 31)
 OFF_DAY = dt.date(2020, 3, 15)
-#: Codes raised elsewhere than in this layer (the timing tests add their own).
-NOT_HERE = {"test_too_few_periods"}
+#: Codes of the timing layer: test_too_few_periods is checked through the command line in
+#: test_timing_warning_through_the_command_line below; test_undefined (a series that never
+#: moves) in tests/unit/test_timing.py.
+NOT_HERE = {"test_too_few_periods", "test_undefined"}
 
 
 def _key(table: str, pid: str = BAD, date: dt.date = MARCH, cls: str | None = "equity") -> pl.Expr:
@@ -514,3 +516,22 @@ def test_every_portfolio_skipped_exits_3(ws: Workspace) -> None:
     assert set(issues["code"]) == {"weights_not_summing"}
     # One issue per portfolio and holdings date, each date summing to 2.
     assert issues.height == ws.frames["holdings"].select("portfolio_id", "as_of").n_unique()
+
+
+def test_timing_warning_through_the_command_line(ws) -> None:
+    """The tiny roster has 12 months and a riskless series: every timing test needs more
+    (24 observations, 12 decisions for merton_accuracy), so each portfolio gets
+    ``test_too_few_periods`` warnings, the run still exits 0 and the rows are null."""
+    out = ws.root / "out"
+    result = ws.invoke(ws.run_args(ws.write(), out))
+    assert result.exit_code == 0, result.output + result.stderr
+    issues = pl.read_parquet(out / "data_issues.parquet").filter(
+        pl.col("code") == "test_too_few_periods"
+    )
+    assert issues.height > 0
+    assert set(issues["severity"].to_list()) == {"warning"}
+    assert set(issues["portfolio_id"].to_list()) == {"P1", "P2", "P3"}
+    assert issues["message"].str.contains("exposure_regression").any()
+    tests = pl.read_parquet(out / "timing_tests.parquet")
+    short = tests.filter(pl.col("test") == "exposure_regression")
+    assert short["p_value"].null_count() == short.height
