@@ -9,6 +9,7 @@ underscores.
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import sys
 import tempfile
@@ -255,10 +256,14 @@ def validate(ctx: click.Context, **params: Any) -> None:
     """Check the inputs only: list the data issues and exit with the code a run would give.
 
     Nothing is written. The portfolios are put through the same steps as a run (the
-    decomposition included, since some warnings only show there) and the results dropped.
+    decomposition included, since some warnings only show there) and the results dropped;
+    the timing tests are not run, so their warnings (test_too_few_periods, test_undefined)
+    appear only in a run.
     """
     params = _merged(ctx, params)
     sources, options = _split(params)
+    # Inputs only: the timing tests (and their warnings) are left to the run.
+    options = dataclasses.replace(options, tests="none")
     result = run_roster(sources, options, effects_sink=lambda frame: None)
     console = _console()
     issues = result.data_issues

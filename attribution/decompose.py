@@ -27,12 +27,20 @@ from dataclasses import dataclass
 
 import numpy as np
 import polars as pl
+import pyarrow as pa
 
 from attribution.calendar import Calendar
 from attribution.kernel import Effects, Panel, decompose_panel
 from attribution.linking import link_arrays
 from attribution.options import RunOptions
-from attribution.panel import Codes, build_panel, encode, make_codes
+from attribution.panel import (
+    Codes,
+    build_panel,
+    distinct_sorted,
+    encode,
+    make_codes,
+    run_starts,
+)
 from attribution.summary import LINKED_EFFECTS, PeriodArrays
 from attribution.validate import (
     check_portfolio_tables,
@@ -79,13 +87,31 @@ SERIES_ORDER = (
 
 @dataclass(frozen=True)
 class ShardResult:
-    """What one shard produces: tables, the per-period arrays, issues and who was skipped."""
+    """What one shard produces: tables, the per-period arrays, issues and who was skipped.
 
-    effects: pl.DataFrame
+    The class-level table, the largest by far, is kept as the arrays it is made of (the
+    shard's panel and kernel output). :meth:`effects_table` builds it as Arrow (text columns
+    dictionary-encoded, numbers straight from the arrays), which is what a Parquet writer
+    wants and can be done on the writer's thread; :attr:`effects` gives it as a polars frame
+    with plain text columns.
+    """
+
+    panel: Panel
+    kernel: Effects
+    calendar: Calendar
     series: pl.DataFrame
     periods: PeriodArrays
     issues: pl.DataFrame
     skipped: tuple[str, ...]
+
+    def effects_table(self) -> pa.Table:
+        """The class-level table as Arrow (columns :data:`EFFECTS_ORDER`)."""
+        return effects_table(self.panel, self.kernel, self.calendar)
+
+    @property
+    def effects(self) -> pl.DataFrame:
+        """The class-level table as a polars frame (columns :data:`EFFECTS_ORDER`)."""
+        return effects_frame(self.effects_table())
 
 
 def holdings_windows(
@@ -103,9 +129,12 @@ def holdings_windows(
     """
     n_p, n_t = len(codes.portfolio_ids), codes.n_periods
     t_all = holdings["_t"].to_numpy()
+    p_all = holdings["_p"].to_numpy()
     inside = (t_all >= 0) & (t_all < n_t)
+    if not inside.all():
+        t_all, p_all = t_all[inside], p_all[inside]
     has = np.zeros((n_p, n_t), dtype=bool)
-    has[holdings["_p"].to_numpy()[inside], t_all[inside]] = True
+    has.reshape(-1)[p_all * n_t + t_all] = True
     p, t = np.nonzero(has)  # sorted by portfolio, then period
     same = np.zeros(len(p), dtype=bool)
     same[1:] = p[1:] == p[:-1]
@@ -239,10 +268,11 @@ def run_shard(
     policy = tables["policy"]
     assert policy is not None
     classes = sorted(index_returns["asset_class"].unique().to_list())
-    ids = sorted(holdings[PID].unique().to_list())
+    runs = run_starts(holdings[PID])
+    ids = distinct_sorted(holdings[PID], runs)
     codes = make_codes(ids, classes, calendar)
     enc: dict[str, pl.DataFrame | None] = {
-        "holdings": encode(holdings, codes, date="as_of", holdings=True),
+        "holdings": encode(holdings, codes, date="as_of", holdings=True, runs=runs),
         "policy": encode(policy, codes, date=None, holdings=False),
         "segment_returns": None,
         "portfolio_returns": None,
@@ -282,11 +312,12 @@ def run_shard(
     eff = decompose_panel(panel, static=options.static, form=options.form)
     periods = _period_arrays(panel, eff, calendar)
     series = _series_frame(panel, eff, periods, calendar, options)
-    effects = _effects_frame(panel, eff, calendar)
     more = _kernel_issues(panel, eff, calendar)
     all_issues = pl.concat([empty_issues(), issues, gap_issues, policy_issues, *more])
     return ShardResult(
-        effects=effects,
+        panel=panel,
+        kernel=eff,
+        calendar=calendar,
         series=series,
         periods=periods,
         issues=all_issues,
@@ -316,7 +347,7 @@ def _period_arrays(panel: Panel, eff: Effects, calendar: Calendar) -> PeriodArra
 
 
 def _floats(values: np.ndarray) -> pl.Series:
-    return pl.Series(values, dtype=pl.Float64).fill_nan(None)
+    return pl.Series(values, dtype=pl.Float64, nan_to_null=True)
 
 
 def _series_frame(
@@ -332,54 +363,158 @@ def _series_frame(
         options.linking,
     )
     linked = np.where(known, linked, np.nan)
-    p, t = np.nonzero(panel.active)
+    n_p, n_t = panel.active.shape
+    # Rows are the active (portfolio, period) cells in C order; when every cell is active
+    # (the usual roster) the columns are flat views instead of gathers.
+    flat = None if panel.active.all() else np.flatnonzero(panel.active)
+    p = _spread(np.arange(n_p)[:, None], (n_p, n_t)) if flat is None else flat // n_t
+    t = _spread(np.arange(n_t)[None, :], (n_p, n_t)) if flat is None else flat % n_t
+
+    def rows(values: np.ndarray) -> np.ndarray:  # (P, T) or (P, T, J) -> rows
+        cells = values.reshape(n_p * n_t, *values.shape[2:])
+        return cells if flat is None else cells[flat]
+
     cal = calendar.frame()
     ids = pl.Series(list(panel.portfolio_ids), dtype=pl.String)
+    sources = pl.Series(_return_source(panel).tolist(), dtype=pl.String)
+    portfolio_return, policy_return = rows(eff.portfolio_return), rows(eff.policy_return)
     data: dict[str, pl.Series] = {
         PID: ids.gather(p),
         "period_end": cal["period_end"].gather(t),
         "period_start": cal["period_start"].gather(t),
-        "return_source": pl.Series(_return_source(panel)[p], dtype=pl.String),
-        "portfolio_return": _floats(eff.portfolio_return[p, t]),
-        "computed_return": _floats(eff.computed_return[p, t]),
-        "policy_return": _floats(eff.policy_return[p, t]),
-        "active_return": _floats(eff.portfolio_return[p, t] - eff.policy_return[p, t]),
+        "return_source": sources.gather(p),
+        "portfolio_return": _floats(portfolio_return),
+        "computed_return": _floats(rows(eff.computed_return)),
+        "policy_return": _floats(policy_return),
+        "active_return": _floats(portfolio_return - policy_return),
     }
+    effects = rows(periods.effects)
     for j, name in enumerate(LINKED_EFFECTS):
-        data[name] = _floats(periods.effects[p, t, j])
-    data["is_drifted"] = pl.Series(periods.is_drifted[p, t], dtype=pl.Boolean)
-    data["cum_portfolio_return"] = _floats(rc[p, t])
-    data["cum_policy_return"] = _floats(bc[p, t])
-    data["cum_active_return"] = _floats(rc[p, t] - bc[p, t])
+        data[name] = _floats(effects[:, j])
+    data["is_drifted"] = pl.Series(rows(periods.is_drifted), dtype=pl.Boolean)
+    cum_r, cum_b = rows(rc), rows(bc)
+    data["cum_portfolio_return"] = _floats(cum_r)
+    data["cum_policy_return"] = _floats(cum_b)
+    data["cum_active_return"] = _floats(cum_r - cum_b)
+    cum = rows(linked)
     for j, name in enumerate(LINKED_EFFECTS):
-        data[f"cum_{name}"] = _floats(linked[p, t, j])
+        data[f"cum_{name}"] = _floats(cum[:, j])
     return pl.DataFrame(data).select(SERIES_ORDER)
 
 
-def _effects_frame(panel: Panel, eff: Effects, calendar: Calendar) -> pl.DataFrame:
-    """The class-level table for every class in the portfolio's universe (held or policy)."""
+# Arrow arrays are made from numpy buffers directly: no copy, and ``pa.array`` is avoided
+# because its first call imports pandas (a third of a second for nothing).
+
+
+def _arrow_floats(values: np.ndarray) -> pa.Array:
+    """A float64 Arrow array over ``values`` (no copy) with NaN turned into null."""
+    values = np.ascontiguousarray(values, dtype=np.float64)
+    nan = np.isnan(values)
+    n_nan = int(np.count_nonzero(nan))
+    if n_nan == len(values) and n_nan:
+        return pa.nulls(len(values), pa.float64())
+    valid = None if n_nan == 0 else pa.py_buffer(np.packbits(~nan, bitorder="little"))
+    return pa.Array.from_buffers(
+        pa.float64(), len(values), [valid, pa.py_buffer(values)], null_count=n_nan
+    )
+
+
+def _is_broadcast_nan(values: np.ndarray) -> bool:
+    """One NaN seen through a broadcast view: an effect the form leaves unknown everywhere."""
+    return values.size > 0 and not any(values.strides) and bool(np.isnan(values.flat[0]))
+
+
+def _arrow_plain(values: np.ndarray, dtype: pa.DataType) -> pa.Array:
+    """An Arrow array without nulls over an int32 numpy array (codes, day numbers) or a
+    boolean one (packed into bits)."""
+    if dtype == pa.bool_():
+        data = np.packbits(np.asarray(values, dtype=bool), bitorder="little")
+    else:
+        data = np.ascontiguousarray(values, dtype=np.int32)
+    return pa.Array.from_buffers(dtype, len(values), [None, pa.py_buffer(data)], null_count=0)
+
+
+def _arrow_strings(values: tuple[str, ...]) -> pa.Array:
+    encoded = [v.encode("utf-8") for v in values]
+    offsets = np.zeros(len(encoded) + 1, dtype=np.int32)
+    np.cumsum([len(v) for v in encoded], out=offsets[1:])
+    buffers = [None, pa.py_buffer(offsets), pa.py_buffer(b"".join(encoded))]
+    return pa.Array.from_buffers(pa.string(), len(values), buffers, null_count=0)
+
+
+def _spread(values: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+    """``values`` broadcast to ``shape`` and laid out flat (a plain copy; ``np.repeat`` and
+    ``np.tile`` do the same an order of magnitude slower)."""
+    return np.broadcast_to(values, shape).reshape(-1)
+
+
+def _text_codes(codes: np.ndarray, values: tuple[str, ...]) -> pa.DictionaryArray:
+    return pa.DictionaryArray.from_arrays(_arrow_plain(codes, pa.int32()), _arrow_strings(values))
+
+
+def effects_table(panel: Panel, eff: Effects, calendar: Calendar) -> pa.Table:
+    """The class-level table for every class in the portfolio's universe (held or policy),
+    as Arrow, rows ordered by portfolio, period and class.
+
+    Built from the kernel's arrays without a detour through text: portfolio and class are
+    dictionary-encoded codes, dates are day numbers, floats are the arrays themselves (a
+    flat view when every cell is in the table, which is the usual case).
+    """
+    n_p, n_t, n_k = eff.weight.shape
     mask = panel.active[:, :, None] & panel.universe[:, None, :]
-    p, t, k = np.nonzero(mask)
-    ids = pl.Series(list(panel.portfolio_ids), dtype=pl.String)
-    classes = pl.Series(list(panel.classes), dtype=pl.String)
-    index = np.broadcast_to(panel.index[None, :, :], mask.shape)
-    data = {
-        PID: ids.gather(p),
-        "period_end": calendar.frame()["period_end"].gather(t),
-        "asset_class": classes.gather(k),
-        "weight": _floats(eff.weight[mask]),
-        "static_weight": _floats(eff.static_weight[mask]),
-        "policy_weight": _floats(panel.policy[mask]),
-        "index_return": _floats(index[mask]),
-        "segment_return": _floats(panel.segment[mask]),
-        "policy_return": _floats(eff.policy_return[p, t]),
-        "static_allocation": _floats(eff.static_allocation[mask]),
-        "timing": _floats(eff.timing[mask]),
-        "selection": _floats(eff.selection[mask]),
-        "interaction": _floats(eff.interaction[mask]),
-        "is_drifted": pl.Series(~panel.holding[p, t], dtype=pl.Boolean),
+    end_days = calendar.frame()["period_end"].cast(pl.Int32).to_numpy()
+    if mask.all():
+        flat = None
+        p = _spread(np.arange(n_p, dtype=np.int32)[:, None, None], (n_p, n_t, n_k))
+        k = _spread(np.arange(n_k, dtype=np.int32)[None, None, :], (n_p, n_t, n_k))
+        days = _spread(end_days[None, :, None], (n_p, n_t, n_k))
+        index = _spread(panel.index[None, :, :], (n_p, n_t, n_k))
+    else:
+        flat = np.flatnonzero(mask)
+        cell = flat // n_k
+        p = cell // n_t
+        days = end_days[cell % n_t]
+        k = flat % n_k
+        index = panel.index.reshape(-1)[flat % (n_t * n_k)]
+
+    n_rows = n_p * n_t * n_k if flat is None else len(flat)
+
+    def cells(values: np.ndarray) -> np.ndarray:  # (P, T, K) -> rows
+        return values.reshape(-1) if flat is None else values.reshape(-1)[flat]
+
+    def periods(values: np.ndarray) -> np.ndarray:  # (P, T) -> rows
+        if flat is None:
+            return _spread(values[:, :, None], (n_p, n_t, n_k))
+        return values.reshape(-1)[cell]
+
+    columns = {
+        PID: _text_codes(p, panel.portfolio_ids),
+        "period_end": _arrow_plain(days, pa.date32()),
+        "asset_class": _text_codes(k, panel.classes),
+        "weight": _arrow_floats(cells(eff.weight)),
+        "static_weight": _arrow_floats(cells(eff.static_weight)),
+        "policy_weight": _arrow_floats(cells(panel.policy)),
+        "index_return": _arrow_floats(index),
+        "segment_return": _arrow_floats(cells(panel.segment)),
+        "policy_return": _arrow_floats(periods(eff.policy_return)),
+        "static_allocation": _arrow_floats(cells(eff.static_allocation)),
+        "timing": _arrow_floats(cells(eff.timing)),
+        "selection": _arrow_floats(cells(eff.selection)),
+        "interaction": (
+            pa.nulls(n_rows, pa.float64())
+            if _is_broadcast_nan(eff.interaction)
+            else _arrow_floats(cells(eff.interaction))
+        ),
+        "is_drifted": _arrow_plain(periods(~panel.holding), pa.bool_()),
     }
-    return pl.DataFrame(data).select(EFFECTS_ORDER)
+    return pa.table(columns)
+
+
+def effects_frame(table: pa.Table) -> pl.DataFrame:
+    """An effects table from :func:`effects_table` as polars, text columns as plain text."""
+    frame = pl.from_arrow(table)
+    assert isinstance(frame, pl.DataFrame)
+    return frame.with_columns(pl.col(PID, "asset_class").cast(pl.String)).select(EFFECTS_ORDER)
 
 
 def _kernel_issues(panel: Panel, eff: Effects, calendar: Calendar) -> list[pl.DataFrame]:

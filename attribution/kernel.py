@@ -69,17 +69,25 @@ class Effects:
     segment_missing: BoolArray  # (P, T, K) held class without a segment return
 
 
-def drift_weights(panel: Panel) -> FloatArray:
+def returns_used(panel: Panel) -> FloatArray:
+    """The return each class earned: the segment return, the index return where none."""
+    return np.where(np.isnan(panel.segment), panel.index[None, :, :], panel.segment)
+
+
+def drift_weights(panel: Panel, returns: FloatArray | None = None) -> FloatArray:
     """Weights held over every period: the reported weights on holdings dates, and in
-    between the buy-and-hold drift with the segment return (index return where missing)."""
+    between the buy-and-hold drift with the segment return (index return where missing).
+
+    ``returns`` is :func:`returns_used` when the caller already has it.
+    """
     n_p, n_t, n_k = panel.held.shape
-    growth = 1.0 + np.where(np.isnan(panel.segment), panel.index[None, :, :], panel.segment)
+    r_used = returns_used(panel) if returns is None else returns
     weights = np.zeros((n_p, n_t, n_k))
     previous = np.zeros((n_p, n_k))
     with np.errstate(invalid="ignore", divide="ignore"):
         for t in range(n_t):
             if t > 0:
-                grown = previous * growth[:, t - 1, :]
+                grown = previous * (1.0 + r_used[:, t - 1, :])
                 total = grown.sum(axis=1, keepdims=True)
                 grown = np.divide(grown, total, out=np.zeros_like(grown), where=total != 0)
             else:
@@ -98,68 +106,111 @@ def static_weights(weights: FloatArray, active: BoolArray, static: StaticWeight)
     ``trailing:N``: mean of the previous N periods (fewer at the start). In the ex-ante
     modes the first period uses its own weight. Means are taken of the deviations from the
     first period's weight, so constant weights give a static weight equal to them exactly
-    (and a timing effect of exactly zero).
+    (and a timing effect of exactly zero). Outside the window the static weight is 0.
     """
-    act = active[:, :, None]
+    # Written in place on one or two (P, T, K) buffers: at roster scale every fresh array
+    # costs more in page faults than the arithmetic on it.
+    outside = ~active[:, :, None]
     first_t = np.argmax(active, axis=1)  # (P,)
     reference = np.take_along_axis(weights, first_t[:, None, None], axis=1)  # (P, 1, K)
-    dev = np.where(act, weights - reference, 0.0)
-    count = np.cumsum(active, axis=1)[:, :, None].astype(float)
+    dev = np.subtract(weights, reference)
+    np.copyto(dev, 0.0, where=outside)
     if static.mode == "window":
         n = np.maximum(active.sum(axis=1), 1)[:, None, None]
         mean_dev = dev.sum(axis=1, keepdims=True) / n
-        return np.where(act, reference + mean_dev, 0.0)
-    csum = np.cumsum(dev, axis=1)
-    before = csum - dev  # sum over earlier periods of the window
+        np.copyto(dev, reference + mean_dev)
+        np.copyto(dev, 0.0, where=outside)
+        return dev
+    count = np.cumsum(active, axis=1)[:, :, None].astype(float)
+    before = np.cumsum(dev, axis=1)
+    before -= dev  # sum over earlier periods of the window
+    del dev
     if static.mode == "expanding":
         n_before = count - 1.0
     else:
         assert static.periods is not None
         lag = static.periods
-        shifted = np.zeros_like(before)
         if lag < before.shape[1]:
-            shifted[:, lag:, :] = before[:, :-lag, :]
-        before = before - shifted
+            # Drop the sums from more than `lag` periods back (a copy: the ranges overlap).
+            before[:, lag:, :] -= before[:, :-lag, :].copy()
         n_before = np.minimum(count - 1.0, float(lag))
+    has_before = n_before > 0
     with np.errstate(invalid="ignore", divide="ignore"):
-        mean_before = np.divide(before, n_before, out=np.zeros_like(before), where=n_before > 0)
-    static_w = np.where(n_before > 0, reference + mean_before, weights)
-    return np.where(act, static_w, 0.0)
+        np.divide(before, n_before, out=before, where=has_before)
+    before += reference
+    np.copyto(before, weights, where=~has_before)
+    np.copyto(before, 0.0, where=outside)
+    return before
+
+
+def _nansum_classes(values: FloatArray, scratch: FloatArray) -> FloatArray:
+    """``np.nansum(values, axis=2)`` computed in ``scratch`` (same values, same order)."""
+    np.copyto(scratch, values)
+    np.copyto(scratch, 0.0, where=np.isnan(scratch))
+    return scratch.sum(axis=2)
 
 
 def decompose_panel(panel: Panel, *, static: StaticWeight, form: str) -> Effects:
-    """Weights, static weights and every effect for a shard (DESIGN §3)."""
-    w = drift_weights(panel)
-    s = static_weights(w, panel.active, static)
+    """Weights, static weights and every effect for a shard (DESIGN §3).
+
+    The formulas are those of the module docstring; the arrays are built in place on as few
+    (P, T, K) buffers as the outputs need, plus one scratch buffer for the sums.
+    """
     act3 = panel.active[:, :, None]
-    q = np.where(act3, panel.policy, 0.0)
-    b = np.broadcast_to(panel.index[None, :, :], w.shape)
+    outside = ~act3
     r = panel.segment
-    r_used = np.where(np.isnan(r), b, r)
-    big_b = np.where(panel.active, (q * b).sum(axis=2), 0.0)
-    missing = panel.has_segments[:, None, None] & np.isnan(r) & (w != 0.0) & act3
+    r_missing = np.isnan(r)
+    b = np.broadcast_to(panel.index[None, :, :], r.shape)
+    r_used = np.where(r_missing, b, r)
+    w = drift_weights(panel, r_used)
+    s = static_weights(w, panel.active, static)
+    q = np.where(act3, panel.policy, 0.0)
+    scratch = np.multiply(q, b)
+    big_b = np.where(panel.active, scratch.sum(axis=2), 0.0)
+    missing = panel.has_segments[:, None, None] & r_missing & (w != 0.0) & act3
+    del r_missing
     unknown = ~panel.has_segments[:, None, None] | missing
     if form == "bf":
-        rel = b - big_b[:, :, None]
-        static_alloc = (s - q) * rel
-        timing = (w - s) * rel
-        selection = np.where(unknown, np.nan, w * (r_used - b))
-        interaction = np.full(w.shape, np.nan)
+        rel = np.subtract(b, big_b[:, :, None], out=scratch)
+        static_alloc = np.subtract(s, q)
+        static_alloc *= rel
+        timing = np.subtract(w, s)
+        timing *= rel
+        selection = np.subtract(r_used, b)
+        selection *= w
+        np.copyto(selection, np.nan, where=unknown)
+        # Unknown everywhere in this form: one NaN seen through a broadcast (read-only) view.
+        interaction = np.broadcast_to(np.nan, w.shape)
     else:
-        static_alloc = (s - q) * b
-        timing = (w - s) * b
-        selection = np.where(unknown, np.nan, q * (r_used - b))
-        interaction = np.where(unknown, np.nan, (w - q) * (r_used - b))
-    static_alloc = np.where(act3, static_alloc, 0.0)
-    timing = np.where(act3, timing, 0.0)
-    computed = np.where(panel.active, (w * r_used).sum(axis=2), 0.0)
+        static_alloc = np.subtract(s, q)
+        static_alloc *= b
+        timing = np.subtract(w, s)
+        timing *= b
+        excess = np.subtract(r_used, b)
+        selection = np.multiply(q, excess)
+        np.copyto(selection, np.nan, where=unknown)
+        interaction = np.subtract(w, q)
+        interaction *= excess
+        del excess
+        np.copyto(interaction, np.nan, where=unknown)
+    del unknown
+    np.copyto(static_alloc, 0.0, where=outside)
+    np.copyto(timing, 0.0, where=outside)
+    np.multiply(w, r_used, out=scratch)
+    computed = np.where(panel.active, scratch.sum(axis=2), 0.0)
+    del r_used
     seg_rows = panel.has_segments[:, None]
     totals = {
         "static_allocation": static_alloc.sum(axis=2),
         "timing": timing.sum(axis=2),
-        "selection": np.where(seg_rows, np.nansum(selection, axis=2), np.nan),
-        "interaction": np.where(seg_rows & (form == "bhb"), np.nansum(interaction, axis=2), np.nan),
+        "selection": np.where(seg_rows, _nansum_classes(selection, scratch), np.nan),
+        "interaction": (
+            np.where(seg_rows, _nansum_classes(interaction, scratch), np.nan)
+            if form == "bhb"
+            else np.full(big_b.shape, np.nan)
+        ),
     }
+    del scratch
     use_reported = panel.has_reported[:, None] & ~np.isnan(panel.reported)
     portfolio_return = np.where(use_reported, panel.reported, computed)
     portfolio_return = np.where(panel.active, portfolio_return, 0.0)

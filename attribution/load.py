@@ -217,10 +217,15 @@ class TableReader:
             raise ReadError(msg) from exc
 
     def portfolio_ids(self) -> pl.Series:
-        """The distinct portfolio ids of the table, as text (nulls dropped)."""
-        ids = self._collect(
-            self._lazy.select(pl.col("portfolio_id").cast(pl.String)).unique()
-        )["portfolio_id"]
+        """The distinct portfolio ids of the table, as text (nulls dropped).
+
+        Only the first row of each run of equal ids is hashed: a file grouped by portfolio
+        (the usual layout) then costs one comparison per row.
+        """
+        pid = pl.col("portfolio_id").cast(pl.String)
+        # Row 0 compares with a null shift, so it is kept unless it is null; nulls are kept.
+        run_start = pid.ne_missing(pid.shift(1)) | pid.is_null()
+        ids = self._collect(self._lazy.select(pid).filter(run_start).unique())["portfolio_id"]
         if ids.null_count():
             msg = (
                 f"{self.table}: column 'portfolio_id' is empty in some rows; every row must "
@@ -234,7 +239,20 @@ class TableReader:
         return coerce_schema(self._collect(self._lazy), self.table)
 
     def read_shard(self, ids: list[str]) -> pl.DataFrame:
-        """The typed rows of the given portfolios."""
-        wanted = pl.Series(ids, dtype=pl.String).implode()
-        lazy = self._lazy.filter(pl.col("portfolio_id").cast(pl.String).is_in(wanted))
-        return coerce_schema(self._collect(lazy), self.table)
+        """The typed rows of the given portfolios; the numbers in one chunk each.
+
+        The id range of the shard is filtered on as well as the ids themselves: Parquet
+        row-group statistics then skip the rest of a file sorted by portfolio.
+        """
+        wanted = pl.Series(ids, dtype=pl.String)
+        pid = pl.col("portfolio_id").cast(pl.String)
+        if wanted.len() == 0:
+            lazy = self._lazy.filter(pid.is_in(wanted.implode()))
+        else:
+            lazy = self._lazy.filter(
+                (pid >= wanted.min()) & (pid <= wanted.max()) & pid.is_in(wanted.implode())
+            )
+        frame = coerce_schema(self._collect(lazy), self.table)
+        # One chunk makes every numpy view of the column free (it is read several times).
+        numbers = [name for name, kind in TABLE_COLUMNS[self.table].items() if kind == FLOAT]
+        return frame.with_columns([frame[name].rechunk() for name in numbers])

@@ -4,6 +4,19 @@ The output folder is replaced as a whole: everything is written into a hidden si
 folder first and swapped in with two renames, so a run that fails or is killed leaves the
 previous results intact. A lock file beside the folder (``flock``, released by the kernel
 when the process dies) keeps two runs from writing the same folder at once.
+
+``results.duckdb`` holds the small tables as copies and the large ones (``effects``,
+``series``, ``summary_windows``; :data:`PARQUET_VIEWS`) as views over their Parquet files,
+which DESIGN §5 allows: copying the class-level table into DuckDB would cost more than
+computing it. DuckDB binds a view when it is created, so the file must exist then, yet the
+view has to read the file at its final place after the folder swap. Each such view therefore
+reads through a table macro ``<table>_parquet(path := '<final path>')``: the macro is first
+created with the staging path as its default, the views (and the ``sql/`` views on top of
+them) are created and bound against it, and the macro is then replaced with the final
+absolute path as its default (DuckDB does not re-bind views when a macro is replaced).
+Nothing is written after the swap, so the folder stays atomic. The views follow the folder's
+absolute path: after moving the folder, query ``effects_parquet('<new>/effects.parquet')``
+or run again.
 """
 
 from __future__ import annotations
@@ -14,18 +27,42 @@ import hashlib
 import json
 import os
 import shutil
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
 from typing import Any
 
 import duckdb
 import polars as pl
+import pyarrow as pa
 import pyarrow.parquet as pq
 
 from attribution.errors import OutputLockedError
 
 SQL_PACKAGE = "attribution.sql"
+
+#: Tables that ``results.duckdb`` holds as views over their Parquet files: the ones that
+#: grow with the length of the record as well as with the roster. The others are copied.
+PARQUET_VIEWS = ("effects", "series", "summary_windows")
+
+#: Parquet settings of the streamed effects table. Dictionary encoding only where it pays
+#: (keys and per-class or per-period values that repeat); the other float columns are
+#: nearly all distinct, so trying a dictionary on them costs time for nothing. LZ4 is several
+#: times faster to write than zstd for a few per cent more bytes.
+EFFECTS_DICTIONARY_COLUMNS = (
+    "portfolio_id",
+    "period_end",
+    "asset_class",
+    "policy_weight",
+    "index_return",
+    "is_drifted",
+)
+EFFECTS_COMPRESSION = "lz4"
+#: The tables written at the end (series is the large one): LZ4 for the same reason.
+TABLE_COMPRESSION = "lz4"
+ROW_GROUP_SIZE = 1 << 20
 
 
 def sha256_of(path: Path) -> str:
@@ -80,7 +117,11 @@ def output_lock(out_dir: Path) -> Iterator[None]:
 
 
 def sql_files() -> list[tuple[str, str]]:
-    """The view definitions shipped in ``sql/`` as ``(view_name, select_text)``, in order."""
+    """The view definitions over the output tables, shipped in ``sql/views/``, in order.
+
+    Only ``sql/views`` is read: ``sql/models`` holds the warehouse models over the *input*
+    tables (see :mod:`attribution.sql_models`), which do not belong in results.duckdb.
+    """
     checkout = Path(__file__).resolve().parent.parent / "sql"
     # A source checkout or editable install reads sql/ in place; a wheel carries it as the
     # data package attribution.sql.
@@ -94,41 +135,115 @@ def sql_files() -> list[tuple[str, str]]:
             elif child.name.endswith(".sql"):
                 found.append((child.name[:-4], child.read_text(encoding="utf-8")))
 
-    walk(root, "")
+    walk(root / "views", "")
     return found
 
 
-def write_duckdb(db_path: Path, parquet: Mapping[str, Path]) -> list[str]:
-    """Load every table into ``results.duckdb`` and create the views from ``sql/``."""
+@dataclass(frozen=True)
+class ParquetView:
+    """A Parquet file to expose in DuckDB as a view: where it is now, where it will be read."""
+
+    staged: Path
+    final: Path
+
+
+def _sql_text(value: object) -> str:
+    return "'" + str(value).replace("'", "''") + "'"
+
+
+def write_duckdb(db_path: Path, parquet: Mapping[str, Path | ParquetView]) -> list[str]:
+    """Build ``results.duckdb``: a table per plain path, a view per :class:`ParquetView`
+    (read through the table macro ``<name>_parquet``, see the module docstring), then the
+    views from ``sql/``. Returns the names of the ``sql/`` views."""
     views: list[str] = []
     con = duckdb.connect(str(db_path))
     try:
-        for name, path in parquet.items():
-            con.execute(f"create table {name} as select * from read_parquet(?)", [str(path)])
+        for name, source in parquet.items():
+            if isinstance(source, ParquetView):
+                con.execute(
+                    f"create macro {name}_parquet(path := {_sql_text(source.staged)}) as table "
+                    "select * from read_parquet(path)"
+                )
+                con.execute(f"create view {name} as select * from {name}_parquet()")
+            else:
+                con.execute(f"create table {name} as select * from read_parquet(?)", [str(source)])
         for name, text in sql_files():
             con.execute(f"create or replace view {name} as {text.strip().rstrip(';')}")
             views.append(name)
+        for name, source in parquet.items():
+            if isinstance(source, ParquetView):
+                # Re-pointing the macro does not re-bind the views built on it.
+                con.execute(
+                    f"create or replace macro {name}_parquet(path := {_sql_text(source.final)}) "
+                    "as table select * from read_parquet(path)"
+                )
     finally:
         con.close()
     return views
 
 
+EffectsPart = pl.DataFrame | pa.Table | Callable[[], pa.Table]
+
+
 class ParquetAppender:
-    """Append polars frames to one Parquet file (one row group per frame or more)."""
+    """Append tables to one Parquet file, one row group per million rows.
+
+    A part is a pyarrow table, a polars frame, or a function that builds the pyarrow table
+    (then it is built on the writer's thread too). Building and writing run on a background
+    thread — numpy and pyarrow release the GIL while they work — so the next shard is
+    computed meanwhile. At most one part is in the writer's hands while the caller builds the
+    next: a call waits for the previous part first. Errors of the writer surface on the next
+    call or on :meth:`close`.
+    """
 
     def __init__(self, path: Path) -> None:
         self.path = path
         self._writer: pq.ParquetWriter | None = None
+        self._pool: ThreadPoolExecutor | None = None
+        self._pending: Future[None] | None = None
         self.rows = 0
 
-    def __call__(self, frame: pl.DataFrame) -> None:
-        table = frame.to_arrow()
+    def _wait(self) -> None:
+        if self._pending is not None:
+            pending, self._pending = self._pending, None
+            pending.result()
+
+    def __call__(self, part: EffectsPart) -> None:
+        self._wait()
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="parquet-writer")
+        self._pending = self._pool.submit(self._write, part)
+
+    def _write(self, part: EffectsPart) -> None:
+        if isinstance(part, pl.DataFrame):
+            table = part.to_arrow()
+        elif isinstance(part, pa.Table):
+            table = part
+        else:
+            table = part()
         if self._writer is None:
-            self._writer = pq.ParquetWriter(self.path, table.schema, compression="zstd")
-        self._writer.write_table(table, row_group_size=1 << 20)
-        self.rows += frame.height
+            dictionary = [c for c in EFFECTS_DICTIONARY_COLUMNS if c in table.column_names]
+            self._writer = pq.ParquetWriter(
+                self.path,
+                table.schema,
+                compression=EFFECTS_COMPRESSION,
+                use_dictionary=dictionary,
+                # Text columns may arrive dictionary-encoded; without the stored Arrow schema
+                # every reader sees them as plain strings.
+                store_schema=False,
+            )
+        self._writer.write_table(table, row_group_size=ROW_GROUP_SIZE)
+        self.rows += table.num_rows
 
     def close(self, empty_schema: dict[str, pl.DataType] | None = None) -> None:
+        """Finish the pending part and the file (an empty table with ``empty_schema`` when
+        nothing was appended)."""
+        try:
+            self._wait()
+        finally:
+            if self._pool is not None:
+                self._pool.shutdown(wait=True)
+                self._pool = None
         if self._writer is not None:
             self._writer.close()
         elif empty_schema is not None:
@@ -171,12 +286,19 @@ class StagedOutput:
     ) -> Path:
         """Write the remaining tables, the DuckDB file and the manifest, then swap folders.
 
-        Parquet files already in the staging folder (streamed tables) are kept and loaded
-        into DuckDB with the rest.
+        Parquet files already in the staging folder (streamed tables) are kept and put in
+        DuckDB with the rest (:data:`PARQUET_VIEWS` as views over the files, the others as
+        copies).
         """
         for name, frame in tables.items():
-            frame.write_parquet(self.staging / f"{name}.parquet", compression="zstd")
-        parquet = {p.stem: p for p in sorted(self.staging.glob("*.parquet"))}
+            frame.write_parquet(self.staging / f"{name}.parquet", compression=TABLE_COMPRESSION)
+        files = sorted(self.staging.glob("*.parquet"))
+        parquet: dict[str, Path | ParquetView] = {
+            p.stem: ParquetView(staged=p, final=self.out_dir / p.name)
+            if p.stem in PARQUET_VIEWS
+            else p
+            for p in files
+        }
         views = write_duckdb(self.staging / "results.duckdb", parquet)
         for name, content in (extra_files or {}).items():
             (self.staging / name).write_bytes(content)
@@ -186,6 +308,7 @@ class StagedOutput:
             for name in sorted(parquet)
         }
         manifest["duckdb_views"] = views
+        manifest["duckdb_parquet_views"] = sorted(n for n in parquet if n in PARQUET_VIEWS)
         (self.staging / "manifest.json").write_text(
             json.dumps(manifest, indent=2, sort_keys=True, default=str) + "\n", encoding="utf-8"
         )

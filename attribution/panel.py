@@ -45,63 +45,128 @@ def make_codes(portfolio_ids: list[str], classes: list[str], calendar: Calendar)
     )
 
 
+#: Largest span of days a direct lookup table may cover (8 bytes a day); longer calendars
+#: fall back to binary search.
+_MAX_TABLE_DAYS = 1 << 22
+
+
 def _lookup(days: np.ndarray, allowed: np.ndarray) -> np.ndarray:
-    """Position of each day number in the sorted ``allowed`` array, −1 where absent."""
+    """Position of each day number in the sorted, distinct ``allowed`` array, −1 where absent.
+
+    A table indexed by day number over the calendar's span makes this one gather per row
+    (calendars span a few thousand days); binary search is kept for absurdly long spans.
+    """
     if len(days) == 0:
         return np.zeros(0, dtype=np.int64)
-    pos = np.searchsorted(allowed, days)
-    pos_c = np.minimum(pos, len(allowed) - 1)
-    return np.where(allowed[pos_c] == days, pos_c, -1)
+    low = int(allowed[0])
+    span = int(allowed[-1]) - low + 1
+    if span > _MAX_TABLE_DAYS:
+        pos = np.searchsorted(allowed, days)
+        pos_c = np.minimum(pos, len(allowed) - 1)
+        return np.where(allowed[pos_c] == days, pos_c, -1)
+    # Slot 0 and the last slot stand for every day before and after the span (clipped there).
+    table = np.full(span + 2, -1, dtype=np.int64)
+    table[allowed - low + 1] = np.arange(len(allowed))
+    offset = days.astype(np.int64)
+    offset -= low - 1
+    return np.take(table, offset, mode="clip")
 
 
-def encode(frame: pl.DataFrame, codes: Codes, *, date: str | None, holdings: bool) -> pl.DataFrame:
+def run_starts(values: pl.Series) -> np.ndarray:
+    """True on the first row of every run of equal values (row 0 included)."""
+    starts = np.array(values.ne_missing(values.shift(1)).to_numpy(), dtype=bool)
+    if len(starts):
+        starts[0] = True
+    return starts
+
+
+def distinct_sorted(values: pl.Series, starts: np.ndarray | None = None) -> list[str]:
+    """The distinct non-null texts of ``values``, sorted; only run heads are hashed, which
+    makes a column grouped by value (a file sorted by portfolio) cheap. ``starts`` is
+    :func:`run_starts` of ``values`` when the caller has it."""
+    starts = run_starts(values) if starts is None else starts
+    heads = values.filter(pl.Series(starts)).drop_nulls()
+    return sorted(heads.unique().to_list())
+
+
+def _portfolio_codes(
+    ids: pl.Series, book: tuple[str, ...], starts: np.ndarray | None = None
+) -> pl.Series:
+    """Position of each id in ``book`` (which must hold every id), as Int64.
+
+    Only the first row of each run of equal ids is looked up; the other rows copy its code.
+    """
+    if ids.null_count() or len(ids) == 0:
+        return ids.cast(pl.Enum(list(book))).to_physical().cast(pl.Int64).rechunk()
+    starts = run_starts(ids) if starts is None else starts
+    heads = ids.filter(pl.Series(starts)).cast(pl.Enum(list(book))).to_physical()
+    return pl.Series(heads.cast(pl.Int64).to_numpy()[np.cumsum(starts) - 1], dtype=pl.Int64)
+
+
+def encode(
+    frame: pl.DataFrame,
+    codes: Codes,
+    *,
+    date: str | None,
+    holdings: bool,
+    runs: np.ndarray | None = None,
+) -> pl.DataFrame:
     """Add ``_p`` (portfolio), ``_t`` (period) and ``_k`` (class) integer codes.
 
     For holdings, ``_t`` is the period the weights are held over (as_of = its start), and
     the calendar's last period_end maps to T (weights for a period not yet in the calendar).
-    For returns, ``_t`` is the period ending on ``period_end``.
+    For returns, ``_t`` is the period ending on ``period_end``. An empty or unknown class,
+    or an empty or off-calendar date, gets −1. ``runs`` is :func:`run_starts` of the
+    portfolio column when the caller already has it.
     """
-    out = frame
+    # Codes are built as one contiguous chunk each, so that every later numpy view is free.
+    added: dict[str, pl.Series] = {}
     if PID in frame.columns:
-        out = out.with_columns(
-            _p=pl.col(PID).cast(pl.Enum(list(codes.portfolio_ids))).to_physical().cast(pl.Int64)
-        )
+        added["_p"] = _portfolio_codes(frame[PID], codes.portfolio_ids, runs)
     if "asset_class" in frame.columns:
-        known = pl.col("asset_class").is_in(list(codes.classes))
-        out = out.with_columns(
-            _k=pl.when(known)
-            .then(
-                pl.col("asset_class")
-                .cast(pl.Enum(list(codes.classes)), strict=False)
-                .to_physical()
-                .cast(pl.Int64)
-            )
-            .otherwise(-1)
+        # A non-strict cast leaves unknown classes (and empty ones) null.
+        physical = (
+            frame["asset_class"].cast(pl.Enum(list(codes.classes)), strict=False).to_physical()
         )
+        if physical.null_count():
+            added["_k"] = physical.cast(pl.Int64).fill_null(-1).rechunk()
+        else:
+            added["_k"] = pl.Series(physical.rechunk().to_numpy().astype(np.int64))
     if date is not None:
         allowed = np.append(codes.start_days, codes.end_days[-1]) if holdings else codes.end_days
-        days = out[date].cast(pl.Int32).fill_null(-(2**31)).to_numpy().astype(np.int64)
-        out = out.with_columns(_t=pl.Series(_lookup(days, allowed), dtype=pl.Int64))
-    return out
+        days = frame[date].to_physical().fill_null(-(2**31)).to_numpy()
+        added["_t"] = pl.Series(_lookup(days, allowed), dtype=pl.Int64)
+    if not added:
+        return frame
+    return frame.with_columns(**added)
+
+
+def _strictly_increasing(key: np.ndarray) -> bool:
+    return bool(np.all(key[1:] > key[:-1]))
 
 
 def duplicate_mask(frame: pl.DataFrame, n_t: int, n_k: int, *, with_class: bool) -> np.ndarray:
     """Rows whose (portfolio, period[, class]) key occurs more than once.
 
     Counting on a dense integer key (``np.bincount``) is linear in the rows, which is what
-    keeps the duplicate check cheap on millions of holdings rows.
+    keeps the duplicate check cheap on millions of holdings rows; rows already in strictly
+    increasing key order (the usual sorted file) cannot repeat a key and skip the count.
     """
     p = frame["_p"].to_numpy()
     t = frame["_t"].to_numpy()
     valid = t >= 0
-    key = p * n_t + t
+    key = p * n_t
+    key += t
     if with_class:
         k = frame["_k"].to_numpy()
         valid &= k >= 0
-        key = key * n_k + k
-    key = np.where(valid, key, 0)
+        key *= n_k
+        key += k
     if len(key) == 0:
         return np.zeros(0, dtype=bool)
+    if valid.all() and _strictly_increasing(key):
+        return np.zeros(len(key), dtype=bool)
+    key = np.where(valid, key, 0)
     counts = np.bincount(key[valid], minlength=int(key.max()) + 1)
     return valid & (counts[key] > 1)
 
@@ -133,26 +198,41 @@ def build_panel(
     t_range = np.arange(n_t)
     active = (t_range[None, :] >= first[:, None]) & (t_range[None, :] <= last[:, None])
 
-    h = holdings.filter(pl.col("_t") < n_t)
-    hp, ht, hk = h["_p"].to_numpy(), h["_t"].to_numpy(), h["_k"].to_numpy()
-    hw = h["weight"].to_numpy()
-    cell = hp * n_t + ht
+    # Holdings dated on the calendar's last period_end (_t == T) start a period not in it.
+    hp, ht, hk = holdings["_p"].to_numpy(), holdings["_t"].to_numpy(), holdings["_k"].to_numpy()
+    hw = holdings["weight"].to_numpy()
+    inside = ht < n_t
+    if not inside.all():
+        hp, ht, hk, hw = hp[inside], ht[inside], hk[inside], hw[inside]
+    cell = hp * n_t
+    cell += ht
     sums = np.bincount(cell, weights=hw, minlength=n_p * n_t)
     holding = np.zeros((n_p, n_t), dtype=bool)
-    holding[hp, ht] = True
+    holding.reshape(-1)[cell] = True
     holding &= active
     held = np.full((n_p, n_t, n_k), np.nan)
     held[holding] = 0.0
-    keep = holding[hp, ht]
-    held[hp[keep], ht[keep], hk[keep]] = hw[keep] / sums[cell[keep]]
+    keep = holding.reshape(-1)[cell]
+    if keep.all():
+        target = cell * n_k
+        target += hk
+        share = sums[cell].astype(np.float64, copy=False)  # bincount of nothing is int
+        np.divide(hw, share, out=share)
+        held.reshape(-1)[target] = share
+    else:
+        kept = cell[keep]
+        held.reshape(-1)[kept * n_k + hk[keep]] = hw[keep] / sums[kept]
 
     universe = np.zeros((n_p, n_k), dtype=bool)
-    universe[hp, hk] = True
+    universe.reshape(-1)[hp * n_k + hk] = True
     universe[policy["_p"].to_numpy(), policy["_k"].to_numpy()] = True
 
-    q = np.zeros((n_p, n_t, n_k))
     in_force = policy_set >= 0
-    q[in_force] = policy_weights[policy_set[in_force]]
+    if in_force.all():
+        q = policy_weights[policy_set]
+    else:
+        q = np.zeros((n_p, n_t, n_k))
+        q[in_force] = policy_weights[policy_set[in_force]]
 
     index = np.zeros((n_t, n_k))
     index[index_returns["_t"].to_numpy(), index_returns["_k"].to_numpy()] = index_returns[
@@ -163,9 +243,11 @@ def build_panel(
     has_segments = np.zeros(n_p, dtype=bool)
     if segments is not None and segments.height:
         sp = segments["_p"].to_numpy()
-        segment[sp, segments["_t"].to_numpy(), segments["_k"].to_numpy()] = segments[
-            "return"
-        ].to_numpy()
+        flat = sp * n_t
+        flat += segments["_t"].to_numpy()
+        flat *= n_k
+        flat += segments["_k"].to_numpy()
+        segment.reshape(-1)[flat] = segments["return"].to_numpy()
         has_segments[sp] = True
     rep = np.full((n_p, n_t), np.nan)
     has_reported = np.zeros(n_p, dtype=bool)

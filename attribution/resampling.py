@@ -28,7 +28,7 @@ def politis_white_block_length(series: FloatArray, n_obs: IntArray) -> FloatArra
 
     Uses ``arch.bootstrap.optimal_block_length`` (which includes the Patton, Politis & White
     2009 correction; METHODS §8.2) on each row's first ``n_obs`` values, one call per distinct
-    length. Rows with fewer than 3 observations or no variation get 1 (no dependence to keep).
+    length. Rows with fewer than 10 observations or no variation get 1 (no dependence to keep).
     """
     from arch.bootstrap import optimal_block_length
 
@@ -36,14 +36,19 @@ def politis_white_block_length(series: FloatArray, n_obs: IntArray) -> FloatArra
     n = np.asarray(n_obs, dtype=np.int64)
     out = np.ones(values.shape[0])
     for length in np.unique(n):
-        if length < 3:
+        if length < 10:
+            # arch's autocorrelation screen needs a few lags to work with; so short a
+            # record has no dependence worth keeping (and no test runs on it).
             continue
         rows = np.flatnonzero(n == length)
         block = values[rows, :length]
         varies = np.ptp(block, axis=1) > 0
         if not varies.any():
             continue
-        est = optimal_block_length(block[varies].T)["stationary"].to_numpy()
+        # A series that is flat over a stretch makes arch divide 0 by 0 in its autocorrelation
+        # screen; the estimate is then not finite and falls back to 1 below.
+        with np.errstate(divide="ignore", invalid="ignore"):
+            est = optimal_block_length(block[varies].T)["stationary"].to_numpy()
         out[rows[varies]] = np.where(np.isfinite(est), est, 1.0)
     return out
 

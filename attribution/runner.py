@@ -17,7 +17,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import polars as pl
+import pyarrow as pa
 
 from attribution.calendar import Calendar, align_dates, build_calendar
 from attribution.decompose import EFFECTS_ORDER, SERIES_ORDER, run_shard
@@ -25,6 +27,7 @@ from attribution.errors import EXIT_OK, EXIT_SKIPPED, OptionError, ReadError
 from attribution.load import TableReader, TableSource
 from attribution.options import RunOptions
 from attribution.summary import summary_frame, windows_frame
+from attribution.timing import TimingOptions, TimingResult, combine_timing, evaluate_timing
 from attribution.validate import (
     check_index_returns,
     check_riskfree,
@@ -33,7 +36,9 @@ from attribution.validate import (
 )
 
 PID = "portfolio_id"
-DEFAULT_SHARD_SIZE = 2500
+#: Portfolios per shard: ~1.7 GiB peak for 12 classes x 240 periods; bigger shards mostly
+#: add memory (page faults on fresh arrays), not speed.
+DEFAULT_SHARD_SIZE = 1000
 PORTFOLIO_TABLES = ("holdings", "policy", "segment_returns", "portfolio_returns")
 DATE_COLUMNS = {
     "holdings": "as_of",
@@ -188,10 +193,32 @@ def _sort_issues(issues: pl.DataFrame) -> pl.DataFrame:
 
 @dataclass(frozen=True)
 class Prepared:
-    """Opened readers and the checked shared tables: what is known before any shard runs."""
+    """Opened readers and the checked shared tables: what is known before any shard runs.
+
+    ``timing`` holds the validated timing-test options, or None with ``timing_note`` saying
+    why the timing tests will not run.
+    """
 
     readers: dict[str, TableReader]
     shared: SharedInputs
+    timing: TimingOptions | None = None
+    timing_note: str | None = None
+
+
+def timing_options(options: RunOptions) -> TimingOptions:
+    """The timing layer's options, taken from the run's options (validated on creation)."""
+    return TimingOptions(
+        market=options.market,
+        exposure=options.exposure,
+        cash_class=options.cash_class,
+        beta_window=options.beta_window,
+        pcm_lag=options.pcm_lag,
+        tests="exact" if options.tests == "exact" else "all",
+        draws=options.draws,
+        seed=options.seed,
+        reference_hit_rate=options.reference_hit_rate,
+        reference_power=options.reference_power,
+    )
 
 
 def prepare(sources: Mapping[str, TableSource | None], options: RunOptions) -> Prepared:
@@ -200,7 +227,15 @@ def prepare(sources: Mapping[str, TableSource | None], options: RunOptions) -> P
     Done before the output folder is touched, so bad input (exit 2) writes nothing.
     """
     readers = open_readers(sources)
-    return Prepared(readers=readers, shared=load_shared(readers, options))
+    shared = load_shared(readers, options)
+    timing = timing_options(options)  # bad timing options fail here too (exit 2)
+    note = None
+    if options.tests == "none":
+        timing, note = None, "timing tests not run: --tests none"
+    elif shared.riskless is None:
+        timing = None
+        note = "timing tests not run: no riskless source (give --riskfree or --cash-class)"
+    return Prepared(readers=readers, shared=shared, timing=timing, timing_note=note)
 
 
 def run_roster(
@@ -208,12 +243,13 @@ def run_roster(
     options: RunOptions,
     *,
     shard_size: int = DEFAULT_SHARD_SIZE,
-    effects_sink: Callable[[pl.DataFrame], None] | None = None,
+    effects_sink: Callable[[Callable[[], pa.Table]], None] | None = None,
 ) -> RunResult:
     """Run the decomposition, linking and summaries for every portfolio that can run.
 
     Whole-input problems raise (exit 2); portfolio problems become ``data_issues`` rows.
-    With ``effects_sink`` each shard's effects table is handed over and not kept.
+    With ``effects_sink`` each shard's effects table is handed over, as the function that
+    builds it (pyarrow; the sink may call it on its own thread), and not kept.
     """
     timings: dict[str, float] = {"read_and_validate": 0.0, "decompose": 0.0, "summarise": 0.0}
     clock = time.perf_counter()
@@ -230,6 +266,7 @@ def run_roster(
     ids = held.to_list()
     effects_parts: list[pl.DataFrame] = []
     series_parts, summary_parts, window_parts = [], [], []
+    timing_parts: list[TimingResult] = []
     skipped: list[str] = []
     ppy = shared.calendar.periods_per_year
     for start in range(0, len(ids), shard_size):
@@ -256,10 +293,29 @@ def run_roster(
         series_parts.append(part.series)
         issues.append(part.issues)
         skipped.extend(part.skipped)
+        shard_effects = None if effects_sink is not None else part.effects
         if effects_sink is not None:
-            effects_sink(part.effects)
+            effects_sink(part.effects_table)
         else:
             effects_parts.append(part.effects)
+        if prepared.timing is not None:
+            clock = time.perf_counter()
+            assert shared.riskless is not None
+            # The battery works on padded arrays where NaN marks "not available" (periods
+            # outside a record, undefined tests); numpy's warnings about NaN arithmetic there
+            # are expected, and every such row is reported through its own issue code.
+            with np.errstate(invalid="ignore", divide="ignore"):
+                found = evaluate_timing(
+                    part.effects if shard_effects is None else shard_effects,
+                    part.series,
+                    shared.index_returns,
+                    shared.riskless,
+                    options=prepared.timing,
+                )
+            timing_parts.append(found)
+            timings["timing_tests"] = timings.get("timing_tests", 0.0) + (
+                time.perf_counter() - clock
+            )
     effects = (
         pl.concat(effects_parts)
         if effects_parts
@@ -267,14 +323,30 @@ def run_roster(
         if effects_sink is not None
         else pl.DataFrame(schema={c: pl.Float64 for c in EFFECTS_ORDER})
     )
+    summary = pl.concat(summary_parts)
+    series = pl.concat(series_parts).select(SERIES_ORDER)
+    extra: dict[str, pl.DataFrame] = {}
+    notes = () if prepared.timing_note is None else (prepared.timing_note,)
+    if prepared.timing is not None and timing_parts:
+        found = combine_timing(timing_parts, prepared.timing)
+        summary = summary.join(found.verdicts, on=PID, how="left")
+        series = series.join(found.series_extra, on=[PID, "period_end"], how="left")
+        issues.append(found.issues)
+        extra = {
+            "timing_tests": found.timing_tests,
+            "roster": found.roster,
+            "power": found.power,
+        }
     return RunResult(
         effects=effects,
-        summary=pl.concat(summary_parts),
+        summary=summary,
         summary_windows=pl.concat(window_parts),
-        series=pl.concat(series_parts).select(SERIES_ORDER),
+        series=series,
         data_issues=_sort_issues(pl.concat(issues)),
         calendar=shared.calendar,
         options=options,
         skipped=tuple(sorted(skipped)),
         timings=timings,
+        extra_tables=extra,
+        notes=notes,
     )

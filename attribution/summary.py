@@ -137,25 +137,32 @@ def window_totals(
     return out
 
 
+def _pick(cols: dict[str, np.ndarray], rows: np.ndarray) -> dict[str, np.ndarray]:
+    return {name: values[rows] for name, values in cols.items()}
+
+
 def _frame(
-    arrays: PeriodArrays, cols: dict[str, np.ndarray], rows: np.ndarray, linking: str
+    arrays: PeriodArrays, picked: dict[str, np.ndarray], rows: np.ndarray, linking: str
 ) -> pl.DataFrame:
+    """The summary table for portfolios ``rows`` from their already picked column values."""
     ids = pl.Series(PID, list(arrays.portfolio_ids), dtype=pl.String)
+    # Text columns are gathered from short lists: converting numpy text arrays is slow.
+    sources = pl.Series(arrays.return_source.tolist(), dtype=pl.String)
     data: dict[str, pl.Series] = {
         PID: ids.gather(rows),
-        "first_period": arrays.period_ends.gather(cols["_first"][rows]).alias("first_period"),
-        "last_period": arrays.period_ends.gather(cols["_last"][rows]).alias("last_period"),
-        "n_periods": pl.Series(cols["n_periods"][rows], dtype=pl.Int64),
-        "return_source": pl.Series(arrays.return_source[rows], dtype=pl.String),
+        "first_period": arrays.period_ends.gather(picked["_first"]).alias("first_period"),
+        "last_period": arrays.period_ends.gather(picked["_last"]).alias("last_period"),
+        "n_periods": pl.Series(picked["n_periods"], dtype=pl.Int64),
+        "return_source": sources.gather(rows),
         "linking": pl.Series([linking] * len(rows), dtype=pl.String),
     }
     for name in SUMMARY_ORDER:
         if name not in data:
-            values = cols[name][rows]
+            values = picked[name]
             if name.startswith("n_"):
                 data[name] = pl.Series(values, dtype=pl.Int64)
             else:
-                data[name] = pl.Series(values, dtype=pl.Float64).fill_nan(None)
+                data[name] = pl.Series(values, dtype=pl.Float64, nan_to_null=True)
     return pl.DataFrame(data).select(SUMMARY_ORDER)
 
 
@@ -163,7 +170,7 @@ def summary_frame(arrays: PeriodArrays, *, linking: str, periods_per_year: int) 
     """One row per portfolio: its whole record linked (columns :data:`SUMMARY_ORDER`)."""
     cols = window_totals(arrays, arrays.active, linking=linking, periods_per_year=periods_per_year)
     rows = np.flatnonzero(cols["n_periods"] > 0)
-    return _frame(arrays, cols, rows, linking)
+    return _frame(arrays, _pick(cols, rows), rows, linking)
 
 
 def windows_frame(arrays: PeriodArrays, *, linking: str, periods_per_year: int) -> pl.DataFrame:
@@ -176,20 +183,30 @@ def windows_frame(arrays: PeriodArrays, *, linking: str, periods_per_year: int) 
     active = arrays.active
     n_active = active.sum(axis=1)
     from_end = np.cumsum(active[:, ::-1], axis=1)[:, ::-1]  # 1 = the last active period
-    frames = []
+    masks: list[tuple[str, np.ndarray]] = []
     for years in (1, 3, 5, 10):
         size = years * periods_per_year
-        mask = active & (from_end <= size) & (n_active[:, None] >= size)
-        cols = window_totals(arrays, mask, linking=linking, periods_per_year=periods_per_year)
-        rows = np.flatnonzero(cols["n_periods"] > 0)
-        frames.append(_frame(arrays, cols, rows, linking).with_columns(window=pl.lit(f"{years}y")))
+        masks.append((f"{years}y", active & (from_end <= size) & (n_active[:, None] >= size)))
     year = arrays.period_ends.dt.year().to_numpy()
     for y in np.unique(year):
-        mask = active & (year == y)[None, :]
+        masks.append((str(y), active & (year == y)[None, :]))
+    labels, picked, rows = [], [], []
+    for label, mask in masks:
         cols = window_totals(arrays, mask, linking=linking, periods_per_year=periods_per_year)
-        rows = np.flatnonzero(cols["n_periods"] > 0)
-        frames.append(_frame(arrays, cols, rows, linking).with_columns(window=pl.lit(str(y))))
-    out = pl.concat(frames)
+        kept = np.flatnonzero(cols["n_periods"] > 0)
+        labels.append(label)
+        picked.append(_pick(cols, kept))
+        rows.append(kept)
+    # One table for all windows: building a frame per window costs more than the windows.
+    window = pl.Series("window", labels, dtype=pl.String).gather(
+        np.repeat(np.arange(len(labels)), [len(r) for r in rows])
+    )
+    out = _frame(
+        arrays,
+        {name: np.concatenate([p[name] for p in picked]) for name in picked[0]},
+        np.concatenate(rows),
+        linking,
+    ).with_columns(window=window)
     order = [PID, "window", *[c for c in SUMMARY_ORDER if c != PID]]
     return (
         out.select(order)

@@ -334,9 +334,7 @@ def evaluate_timing(
 
     tests_frame, issues = _tests_frame(arrays.portfolio_ids, rows)
     tests_frame = _add_q_values(tests_frame)
-    verdicts = _verdicts(
-        tests_frame, arrays.portfolio_ids, rows["merton_accuracy"].n_obs, options
-    )
+    verdicts = _verdicts(tests_frame, arrays.portfolio_ids, rows["merton_accuracy"].n_obs, options)
     roster = _roster(tests_frame, options.fdr_level)
     power = _power_frame(arrays, rows, options)
     return TimingResult(

@@ -13,6 +13,7 @@ Two kinds of bad input (DESIGN §2):
 
 from __future__ import annotations
 
+import numpy as np
 import polars as pl
 
 from attribution.calendar import Calendar
@@ -61,6 +62,11 @@ ISSUE_CODES: dict[str, tuple[str, str]] = {
         "no reported return for a period: the computed return is used for it",
     ),
     "test_too_few_periods": ("warning", "too few decisions or periods for a timing test"),
+    "test_undefined": (
+        "warning",
+        "a timing test cannot be computed: nothing varies (constant weights, a market that "
+        "never changed sign, a singular design)",
+    ),
 }
 
 
@@ -177,6 +183,8 @@ def _duplicates(
     full = ["portfolio_id", *keys]
     if "_t" in frame.columns:
         mask = duplicate_mask(frame, n_t, n_k, with_class=class_col is not None)
+        if not mask.any():
+            return empty_issues()
         dup = frame.filter(pl.Series(mask)).unique(full).sort(full)
     else:
         dup = frame.drop_nulls(full).filter(pl.len().over(full) > 1).unique(full).sort(full)
@@ -294,6 +302,66 @@ def _not_summing(frame: pl.DataFrame, table: str, date_col: str, tolerance: floa
     )
 
 
+# --- cheap screens -------------------------------------------------------------------------
+# Each screen answers "could this rule find anything?" in one vectorised pass over arrays the
+# encoding already holds. A screen may answer yes when the rule then finds nothing, never the
+# reverse; the rule itself (above) runs only on a yes, so clean tables — the usual case on a
+# large roster — cost a few array passes instead of a filter per rule.
+
+
+def _may_have_null_keys(frame: pl.DataFrame, keys: list[str]) -> bool:
+    return any(frame[k].null_count() > 0 for k in keys)
+
+
+def _may_be_nonfinite(frame: pl.DataFrame, value: str) -> bool:
+    column = frame[value]
+    return column.null_count() > 0 or not bool(np.isfinite(column.to_numpy()).all())
+
+
+def _may_be_too_low(frame: pl.DataFrame) -> bool:
+    values = frame["return"].to_numpy()
+    # fmin skips NaN (empty cells), as the rule's filter does.
+    return len(values) > 0 and bool(np.fmin.reduce(values) <= -1.0)
+
+
+def _may_be_negative(frame: pl.DataFrame, code: str) -> bool:
+    values = frame[code].to_numpy()
+    return len(values) > 0 and bool(values.min() < 0)
+
+
+#: Slack of the weight-sum screen: far above the rounding difference between two summation
+#: orders of one date's weights, far below any tolerance a user would set.
+_SUM_SLACK = 1e-9
+
+
+def _may_not_sum(frame: pl.DataFrame, n_t: int, tolerance: float) -> bool:
+    """Screen for :func:`_not_summing` on coded holdings: sums per (portfolio, period code).
+
+    Only valid when every row has a calendar code (then a code stands for exactly one date);
+    otherwise it answers yes. A group is flagged when its sum is off by more than the
+    tolerance less a slack that covers summing in another order.
+    """
+    t = frame["_t"].to_numpy()
+    if len(t) == 0:
+        return False
+    if (t < 0).any():
+        return True
+    weight = frame["weight"].to_numpy()
+    key = frame["_p"].to_numpy() * n_t + t
+    finite = np.isfinite(weight)
+    if not finite.all():
+        key, weight = key[finite], weight[finite]
+    if len(key) == 0:
+        return False
+    size = int(key.max()) + 1
+    sums = np.bincount(key, weights=weight, minlength=size)
+    magnitude = np.bincount(key, weights=np.abs(weight), minlength=size)
+    present = np.zeros(size, dtype=bool)
+    present[key] = True
+    off = np.abs(sums - 1.0) > tolerance - _SUM_SLACK * (1.0 + magnitude)
+    return bool((off & present).any())
+
+
 def check_portfolio_tables(
     tables: dict[str, pl.DataFrame | None],
     calendar: Calendar,
@@ -307,6 +375,7 @@ def check_portfolio_tables(
     Rules and codes are listed in :data:`ISSUE_CODES`. Holdings dates must be calendar
     period ends or the first period's start; return dates must be calendar period ends.
     Portfolios that appear only outside holdings are found by :func:`orphan_issues`.
+    A rule's issue rows are built only when its cheap screen says the table may break it.
     """
     holdings = tables["holdings"]
     policy = tables["policy"]
@@ -315,19 +384,24 @@ def check_portfolio_tables(
     n_t, n_k = codes.n_periods + 1, len(codes.classes)
     found: list[pl.DataFrame] = []
     h_keys = ["as_of", "asset_class"]
-    found += [
-        _null_keys(holdings, "holdings", h_keys),
-        _duplicates(holdings, "holdings", h_keys, "as_of", "asset_class", n_t, n_k),
-        _nonfinite(holdings, "holdings", "weight", "as_of", "asset_class"),
-        _off_calendar(
-            holdings,
-            "holdings",
-            "as_of",
-            "a period_end or the first period's start " + str(calendar.first_start),
-        ),
-        _unknown_class(holdings, "holdings", codes.classes),
-        _not_summing(holdings, "holdings", "as_of", weight_tolerance),
-    ]
+    if _may_have_null_keys(holdings, h_keys):
+        found.append(_null_keys(holdings, "holdings", h_keys))
+    found.append(_duplicates(holdings, "holdings", h_keys, "as_of", "asset_class", n_t, n_k))
+    if _may_be_nonfinite(holdings, "weight"):
+        found.append(_nonfinite(holdings, "holdings", "weight", "as_of", "asset_class"))
+    if _may_be_negative(holdings, "_t"):
+        found.append(
+            _off_calendar(
+                holdings,
+                "holdings",
+                "as_of",
+                "a period_end or the first period's start " + str(calendar.first_start),
+            )
+        )
+    if _may_be_negative(holdings, "_k"):
+        found.append(_unknown_class(holdings, "holdings", codes.classes))
+    if _may_not_sum(holdings, n_t, weight_tolerance):
+        found.append(_not_summing(holdings, "holdings", "as_of", weight_tolerance))
     p_keys = ["effective_from", "asset_class"]
     found += [
         _null_keys(policy, "policy", p_keys),
@@ -338,27 +412,36 @@ def check_portfolio_tables(
     ]
     segments = tables.get("segment_returns")
     if segments is not None:
-        s_keys = ["period_end", "asset_class"]
-        found += [
-            _null_keys(segments, "segment_returns", s_keys),
-            _duplicates(segments, "segment_returns", s_keys, "period_end", "asset_class", n_t, n_k),
-            _nonfinite(segments, "segment_returns", "return", "period_end", "asset_class"),
-            _too_low(segments, "segment_returns", "asset_class"),
-            _off_calendar(segments, "segment_returns", "period_end", "a period_end"),
-            _unknown_class(segments, "segment_returns", codes.classes),
-        ]
+        found += _return_table_issues(segments, "segment_returns", "asset_class", n_t, n_k, codes)
     reported = tables.get("portfolio_returns")
     if reported is not None:
-        found += [
-            _null_keys(reported, "portfolio_returns", ["period_end"]),
-            _duplicates(
-                reported, "portfolio_returns", ["period_end"], "period_end", None, n_t, n_k
-            ),
-            _nonfinite(reported, "portfolio_returns", "return", "period_end", None),
-            _too_low(reported, "portfolio_returns", None),
-            _off_calendar(reported, "portfolio_returns", "period_end", "a period_end"),
-        ]
+        found += _return_table_issues(reported, "portfolio_returns", None, n_t, n_k, codes)
     return pl.concat([empty_issues(), *found], how="vertical")
+
+
+def _return_table_issues(
+    frame: pl.DataFrame,
+    table: str,
+    class_col: str | None,
+    n_t: int,
+    n_k: int,
+    codes: Codes,
+) -> list[pl.DataFrame]:
+    """The rules for segment_returns (``class_col`` given) and portfolio_returns."""
+    keys = ["period_end", class_col] if class_col else ["period_end"]
+    found: list[pl.DataFrame] = []
+    if _may_have_null_keys(frame, keys):
+        found.append(_null_keys(frame, table, keys))
+    found.append(_duplicates(frame, table, keys, "period_end", class_col, n_t, n_k))
+    if _may_be_nonfinite(frame, "return"):
+        found.append(_nonfinite(frame, table, "return", "period_end", class_col))
+    if _may_be_too_low(frame):
+        found.append(_too_low(frame, table, class_col))
+    if _may_be_negative(frame, "_t"):
+        found.append(_off_calendar(frame, table, "period_end", "a period_end"))
+    if class_col is not None and _may_be_negative(frame, "_k"):
+        found.append(_unknown_class(frame, table, codes.classes))
+    return found
 
 
 def orphan_issues(held: pl.Series, others: list[pl.Series]) -> pl.DataFrame:

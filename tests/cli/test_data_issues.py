@@ -488,7 +488,8 @@ def test_validate_matches_run(ws: Workspace, case: IssueCase) -> None:
     assert checked.exit_code == ran.exit_code
     run_codes = set(pl.read_parquet(out / "data_issues.parquet")["code"])
     assert case.code in run_codes
-    for code in run_codes:
+    # validate checks inputs only: the timing layer's warnings come from the run alone.
+    for code in run_codes - NOT_HERE:
         assert code in checked.stdout, (code, checked.stdout)
 
 

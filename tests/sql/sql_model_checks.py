@@ -118,7 +118,11 @@ def assert_matches_python(sql: dict[str, pl.DataFrame], python: dict[str, pl.Dat
     extra = ours.join(theirs, on=ISSUE_KEY, how="anti", nulls_equal=True)
     assert missing.height == 0, f"data_issues missing in SQL: {missing}"
     assert extra.height == 0, f"data_issues only in SQL: {extra}"
-    other = python["data_issues"].filter(~pl.col("code").is_in(codes))
+    # The timing tests are not part of the SQL models; their warnings are the engine's alone.
+    timing_codes = ["test_too_few_periods", "test_undefined"]
+    other = python["data_issues"].filter(
+        ~pl.col("code").is_in(codes) & ~pl.col("code").is_in(timing_codes)
+    )
     assert other.height == 0, f"issue codes the SQL path did not report: {other}"
 
 
