@@ -23,6 +23,7 @@ calls it, and turns the arrays back into the contract's tables.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -180,7 +181,22 @@ def holdings_windows(
         ),
         period="as_of",
     )
-    return windows, issues
+    # Holdings dated only on the calendar's last period_end start no period: say so rather
+    # than let the portfolio vanish from every table.
+    listed = np.zeros(n_p, dtype=bool)
+    listed[holdings["_p"].to_numpy()] = True
+    idle = np.flatnonzero(listed & ~present)
+    idle_rows = pl.DataFrame({PID: ids.gather(idle)}, schema={PID: pl.String})
+    idle_issues = issue_rows(
+        idle_rows,
+        code="no_holdings",
+        message=pl.format(
+            "holdings: portfolio {}: its only holdings date is the calendar's last period_end, "
+            "where no period starts; nothing to evaluate.",
+            PID,
+        ),
+    )
+    return windows, pl.concat([issues, idle_issues])
 
 
 def policy_assignment(
@@ -310,10 +326,20 @@ def run_shard(
         policy_weights=policy_weights,
     )
     eff = decompose_panel(panel, static=options.static, form=options.form)
+    ruin_issues, ruined = _ruined_records(panel, eff, codes, calendar)
+    if ruined:
+        # A period return of -100 % or less (possible with leverage) cannot be compounded or
+        # linked: such portfolios are skipped with an error rather than reported as NaN.
+        skipped |= set(ruined)
+        keep = ~np.isin(
+            np.arange(len(codes.portfolio_ids)), [codes.portfolio_ids.index(p) for p in ruined]
+        )
+        panel = dataclasses.replace(panel, active=panel.active & keep[:, None])
+        eff = decompose_panel(panel, static=options.static, form=options.form)
     periods = _period_arrays(panel, eff, calendar)
     series = _series_frame(panel, eff, periods, calendar, options)
     more = _kernel_issues(panel, eff, calendar)
-    all_issues = pl.concat([empty_issues(), issues, gap_issues, policy_issues, *more])
+    all_issues = pl.concat([empty_issues(), issues, gap_issues, policy_issues, ruin_issues, *more])
     return ShardResult(
         panel=panel,
         kernel=eff,
@@ -323,6 +349,32 @@ def run_shard(
         issues=all_issues,
         skipped=tuple(sorted(skipped)),
     )
+
+
+def _ruined_records(
+    panel: Panel, eff: Effects, codes: Codes, calendar: Calendar
+) -> tuple[pl.DataFrame, list[str]]:
+    """Portfolios with a computed, reported or policy period return of −100 % or less."""
+    ruined = panel.active & ((eff.portfolio_return <= -1.0) | (eff.policy_return <= -1.0))
+    bad = np.flatnonzero(ruined.any(axis=1))
+    ids = [codes.portfolio_ids[p] for p in bad]
+    first = np.argmax(ruined[bad], axis=1) if bad.size else np.zeros(0, dtype=np.int64)
+    rows = pl.DataFrame(
+        {PID: ids, "period_end": calendar.frame()["period_end"].gather(first)},
+        schema={PID: pl.String, "period_end": pl.Date},
+    )
+    issues = issue_rows(
+        rows,
+        code="period_return_below_minus_100",
+        message=pl.format(
+            "portfolio {}: the period ending {} has a portfolio or policy return of -100 % or "
+            "less (leveraged weights); the record cannot be compounded or linked.",
+            PID,
+            pl.col("period_end").cast(pl.String),
+        ),
+        period="period_end",
+    )
+    return issues, ids
 
 
 def _return_source(panel: Panel) -> np.ndarray:

@@ -45,6 +45,11 @@ ISSUE_CODES: dict[str, tuple[str, str]] = {
         "holdings or policy weights of one date not summing to 1 within --weight-tolerance",
     ),
     "no_policy_in_force": ("error", "no policy row set in force for a period of the record"),
+    "period_return_below_minus_100": (
+        "error",
+        "a computed, reported or policy period return of -100 % or less (leveraged weights): "
+        "the record cannot be compounded or linked",
+    ),
     "no_holdings": (
         "warning",
         "rows for a portfolio that has no usable holdings; nothing to evaluate",

@@ -203,6 +203,26 @@ def orphan_not_evaluated(out: Path) -> None:
     assert "P4" not in summary["portfolio_id"].to_list()
 
 
+def leveraged_ruin(frames: Frames) -> Frames:
+    """P2 holds 300 % equity financed by −200 % cash over March, when its equity segment loses
+    60 %: a computed period return of about −180 % (negative weights are allowed)."""
+    out = dict(frames)
+    feb = dt.date(2020, 2, 29)
+    weights = {"equity": 3.0, "bonds": 0.0, "cash": -2.0}
+    out["holdings"] = frames["holdings"].with_columns(
+        weight=pl.when((pl.col("portfolio_id") == BAD) & (pl.col("as_of") == feb))
+        .then(pl.col("asset_class").replace_strict(weights, return_dtype=pl.Float64))
+        .otherwise(pl.col("weight"))
+    )
+    out["segment_returns"] = frames["segment_returns"].with_columns(
+        **{
+            "return": pl.when(_key("segment_returns")).then(-0.6).otherwise(pl.col("return")),
+        }
+    )
+    out["portfolio_returns"] = frames["portfolio_returns"].filter(pl.col("portfolio_id") != BAD)
+    return out
+
+
 @dataclass(frozen=True)
 class IssueCase:
     """One minimal bad input and what the data_issues row must say about it."""
@@ -222,6 +242,13 @@ class IssueCase:
 
 
 CASES = (
+    IssueCase(
+        "period_return_below_minus_100",
+        "holdings",
+        leveraged_ruin,
+        (BAD, "2020-03-31", "-100 %"),
+        MARCH,
+    ),
     IssueCase(
         "missing_key", "holdings", append_null_key("holdings", "as_of"), ("holdings", BAD, "as_of")
     ),

@@ -233,13 +233,6 @@ def test_align_month_maps_business_days_to_month_ends() -> None:
                 assert left[col].to_list() == right[col].to_list()
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "ENGINE BUG: a portfolio whose only holdings date is the calendar's last period_end "
-        "(a valid as_of) vanishes from every output with exit code 0 and no data_issues row"
-    ),
-)
 def test_portfolio_with_nothing_to_evaluate_is_reported() -> None:
     # DESIGN §1-2: bad data is reported plainly; a portfolio is either evaluated, or
     # skipped/flagged with a data_issues row. Weights as of the last period_end start no

@@ -223,13 +223,6 @@ def test_null_effect_columns_stay_null_and_partial_nulls_count_as_zero() -> None
     assert abs(linked["cum_e2"][-1] - reference["cum_e2"][-1]) <= IDENTITY_ATOL
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "ENGINE BUG: a leveraged portfolio with a period return at or below -100 % gets NaN "
-        "Cariño/Menchero linked effects, exit code 0 and no data_issues row"
-    ),
-)
 @pytest.mark.parametrize("method", ["carino", "menchero"])
 def test_period_return_at_or_below_minus_100_is_not_a_silent_nan(method: str) -> None:
     # Negative weights are allowed (DESIGN §2), so a computed return can be ≤ −100 %
