@@ -244,12 +244,15 @@ def run_roster(
     *,
     shard_size: int = DEFAULT_SHARD_SIZE,
     effects_sink: Callable[[Callable[[], pa.Table]], None] | None = None,
+    progress: Callable[[int, int], None] | None = None,
 ) -> RunResult:
     """Run the decomposition, linking and summaries for every portfolio that can run.
 
     Whole-input problems raise (exit 2); portfolio problems become ``data_issues`` rows.
     With ``effects_sink`` each shard's effects table is handed over, as the function that
     builds it (pyarrow; the sink may call it on its own thread), and not kept.
+    ``progress(done, total)`` is called once before the first shard (done = 0) and after
+    every shard, with portfolios counted.
     """
     timings: dict[str, float] = {"read_and_validate": 0.0, "decompose": 0.0, "summarise": 0.0}
     clock = time.perf_counter()
@@ -269,6 +272,8 @@ def run_roster(
     timing_parts: list[TimingResult] = []
     skipped: list[str] = []
     ppy = shared.calendar.periods_per_year
+    if progress is not None:
+        progress(0, len(ids))
     for start in range(0, len(ids), shard_size):
         shard = ids[start : start + shard_size]
         clock = time.perf_counter()
@@ -316,6 +321,8 @@ def run_roster(
             timings["timing_tests"] = timings.get("timing_tests", 0.0) + (
                 time.perf_counter() - clock
             )
+        if progress is not None:
+            progress(min(start + shard_size, len(ids)), len(ids))
     effects = (
         pl.concat(effects_parts)
         if effects_parts
