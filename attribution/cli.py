@@ -187,9 +187,18 @@ def print_summary(result: RunResult, console: Console, out_dir: Path | None) -> 
 
 
 def execute_run(
-    sources: dict[str, Any], options: RunOptions, out_dir: Path, *, started: float
+    sources: dict[str, Any],
+    options: RunOptions,
+    out_dir: Path,
+    *,
+    started: float,
+    write_report: bool = True,
 ) -> RunResult:
-    """Run the roster and write its outputs atomically under the folder's lock."""
+    """Run the roster and write its outputs atomically under the folder's lock.
+
+    ``write_report=False`` leaves report.html out (``tiltaudit report`` can build it later
+    from the stored tables).
+    """
     from attribution.api import build_manifest, file_hashes
     from attribution.decompose import EFFECTS_ORDER
     from attribution.outputs import ParquetAppender, StagedOutput, output_lock
@@ -207,16 +216,14 @@ def execute_run(
         timings = manifest["timings_seconds"]
         clock = time.perf_counter()
         timings["write_started"] = clock - started
-        report = build_report(
-            {**tables, "effects": pl.scan_parquet(staged.path("effects.parquet"))},
-            manifest=manifest,
-        )
-        staged.commit(
-            tables,
-            manifest=manifest,
-            row_counts=counts,
-            extra_files={"report.html": report.encode("utf-8")},
-        )
+        extra_files = {}
+        if write_report:
+            report = build_report(
+                {**tables, "effects": pl.scan_parquet(staged.path("effects.parquet"))},
+                manifest=manifest,
+            )
+            extra_files["report.html"] = report.encode("utf-8")
+        staged.commit(tables, manifest=manifest, row_counts=counts, extra_files=extra_files)
     return result
 
 
@@ -230,10 +237,16 @@ def main() -> None:
 @input_options
 @click.option("--out", "out", type=click.Path(file_okay=False), help="Output folder.")
 @run_options
+@click.option(
+    "--report/--no-report",
+    "write_report",
+    default=True,
+    help="Write report.html (default) or leave it to `tiltaudit report`.",
+)
 @click.option("--quiet", is_flag=True, help="Print nothing but errors.")
 @click.pass_context
 @handle_errors
-def run(ctx: click.Context, quiet: bool, **params: Any) -> None:
+def run(ctx: click.Context, quiet: bool, write_report: bool, **params: Any) -> None:
     """Evaluate a roster and write every table into --out."""
     started = time.perf_counter()
     params = _merged(ctx, params)
@@ -241,7 +254,7 @@ def run(ctx: click.Context, quiet: bool, **params: Any) -> None:
     if not out:
         raise OptionError("The 'out' option is required: give the output folder with --out.")
     sources, options = _split(params)
-    result = execute_run(sources, options, Path(out), started=started)
+    result = execute_run(sources, options, Path(out), started=started, write_report=write_report)
     if not quiet:  # rendering the table for a quiet console still costs seconds on a roster
         print_summary(result, _console(), Path(out).resolve())
     sys.exit(result.exit_code)
