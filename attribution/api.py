@@ -95,6 +95,7 @@ def run(
     riskfree: TableSource | None = None,
     segment_returns: TableSource | None = None,
     portfolio_returns: TableSource | None = None,
+    portfolio_values: TableSource | None = None,
     **options: Any,
 ) -> RunResult:
     """Run a roster in memory. Tables are paths (Parquet/CSV) or polars, pandas or Arrow
@@ -112,6 +113,7 @@ def run(
         "riskfree": riskfree,
         "segment_returns": segment_returns,
         "portfolio_returns": portfolio_returns,
+        "portfolio_values": portfolio_values,
     }
     result = run_roster(sources, RunOptions.build(**options))
     return result.with_sources(sources)

@@ -29,12 +29,7 @@ from attribution import __version__
 from attribution.errors import OptionError, ReadError, TiltauditError
 from attribution.options import RunOptions
 from attribution.runner import RunResult, prepare, run_roster
-
-CAUTIONS = (
-    "Cautions: statistical evidence is not proof of skill; short records have little power; "
-    "past results do not guarantee future ones; this is not investment advice. Defer to the "
-    "plan's governance and to licensed professionals."
-)
+from attribution.terminal import CAUTIONS, LOG_FORMATS, RunReporter, make_console
 
 INPUT_FLAGS = (
     ("holdings", "Holdings: portfolio_id, as_of, asset_class, weight (.parquet or .csv)."),
@@ -43,6 +38,7 @@ INPUT_FLAGS = (
     ("riskfree", "Riskless returns: period_end, return (needed for timing tests)."),
     ("segment_returns", "Segment returns: portfolio_id, period_end, asset_class, return."),
     ("portfolio_returns", "Reported returns: portfolio_id, period_end, return."),
+    ("portfolio_values", "Portfolio values: portfolio_id, as_of, value (money terms, plan view)."),
 )
 OPTION_FLAGS: tuple[tuple[str, type | click.ParamType, str], ...] = (
     ("static", str, "Static weight: window (default) | expanding | trailing:N."),
@@ -142,48 +138,8 @@ def _split(params: dict[str, Any]) -> tuple[dict[str, Any], RunOptions]:
 
 
 def _console(quiet: bool = False) -> Console:
-    # Outside a terminal (logs, pipes) rich would wrap at 80 columns; tables need more room.
-    width = None if sys.stdout.isatty() else 160
-    return Console(stderr=False, quiet=quiet, highlight=False, soft_wrap=False, width=width)
-
-
-def _pct(value: Any) -> str:
-    return "—" if value is None else f"{100 * value:+.2f}%"
-
-
-def print_summary(result: RunResult, console: Console, out_dir: Path | None) -> None:
-    """A compact per-portfolio table: cumulative active return and its linked split."""
-    issues = result.data_issues
-    table = Table(title="tiltaudit — linked effects over each portfolio's record", box=None)
-    for col in ("portfolio", "periods", "source", "active", "static", "timing", "selection"):
-        table.add_column(col, justify="left" if col in ("portfolio", "source") else "right")
-    table.add_column("residual", justify="right")
-    table.add_column("issues", justify="right")
-    for row in result.summary.iter_rows(named=True):
-        pid = row["portfolio_id"]
-        n_issues = issues.filter(issues["portfolio_id"] == pid).height
-        table.add_row(
-            pid,
-            str(row["n_periods"]),
-            row["return_source"],
-            _pct(row["active_return"]),
-            _pct(row["static_allocation"]),
-            _pct(row["timing"]),
-            _pct(row["selection"]),
-            _pct(row["residual"]),
-            str(n_issues) if n_issues else "",
-        )
-    console.print(table)
-    for pid in result.skipped:
-        first = issues.filter((issues["portfolio_id"] == pid) & (issues["severity"] == "error"))
-        reason = first["message"][0] if first.height else "error"
-        console.print(f"skipped {pid}: {reason}")
-    n_warn = issues.filter(issues["severity"] == "warning").height
-    if n_warn:
-        console.print(f"{n_warn} warning(s) in data_issues.")
-    if out_dir is not None:
-        console.print(f"Results in {out_dir}")
-    console.print(CAUTIONS)
+    # Never forces colour; NO_COLOR drops every style code; 160 columns off a terminal.
+    return make_console(quiet=quiet)
 
 
 def execute_run(
@@ -193,11 +149,13 @@ def execute_run(
     *,
     started: float,
     write_report: bool = True,
+    progress: Callable[[int, int], None] | None = None,
 ) -> RunResult:
     """Run the roster and write its outputs atomically under the folder's lock.
 
     ``write_report=False`` leaves report.html out (``tiltaudit report`` can build it later
-    from the stored tables).
+    from the stored tables). ``progress(done, total)`` is handed to the runner (portfolios
+    counted; see :func:`attribution.runner.run_roster`).
     """
     from attribution.api import build_manifest, file_hashes
     from attribution.decompose import EFFECTS_ORDER
@@ -207,7 +165,7 @@ def execute_run(
     prepared = prepare(sources, options)  # bad input fails here, before anything is written
     with output_lock(out_dir), StagedOutput(out_dir) as staged:
         effects = ParquetAppender(staged.path("effects.parquet"))
-        result = run_roster(prepared, options, effects_sink=effects)
+        result = run_roster(prepared, options, effects_sink=effects, progress=progress)
         effects.close(empty_schema=dict.fromkeys(EFFECTS_ORDER, pl.Float64()))
         tables = result.tables()
         counts = {name: frame.height for name, frame in tables.items()}
@@ -244,19 +202,39 @@ def main() -> None:
     help="Write report.html (default) or leave it to `tiltaudit report`.",
 )
 @click.option("--quiet", is_flag=True, help="Print nothing but errors.")
+@click.option(
+    "--log-format",
+    type=click.Choice(LOG_FORMATS),
+    default="text",
+    show_default=True,
+    help="text: progress on a terminal and a summary table; json: one JSON event per line.",
+)
 @click.pass_context
 @handle_errors
-def run(ctx: click.Context, quiet: bool, write_report: bool, **params: Any) -> None:
+def run(
+    ctx: click.Context, quiet: bool, write_report: bool, log_format: str, **params: Any
+) -> None:
     """Evaluate a roster and write every table into --out."""
     started = time.perf_counter()
-    params = _merged(ctx, params)
-    out = params.pop("out", None)
-    if not out:
-        raise OptionError("The 'out' option is required: give the output folder with --out.")
-    sources, options = _split(params)
-    result = execute_run(sources, options, Path(out), started=started, write_report=write_report)
-    if not quiet:  # rendering the table for a quiet console still costs seconds on a roster
-        print_summary(result, _console(), Path(out).resolve())
+    # The reporter draws the progress bar (a terminal only), prints the summary or the JSON
+    # events, and on an error stops the bar and writes the JSON error event.
+    reporter = RunReporter(command="run", log_format=log_format, quiet=quiet, started=started)
+    with reporter:
+        params = _merged(ctx, params)
+        out = params.pop("out", None)
+        if not out:
+            raise OptionError("The 'out' option is required: give the output folder with --out.")
+        reporter.run_started(out)
+        sources, options = _split(params)
+        result = execute_run(
+            sources,
+            options,
+            Path(out),
+            started=started,
+            write_report=write_report,
+            progress=reporter.progress,
+        )
+        reporter.finished(result, out)
     sys.exit(result.exit_code)
 
 
@@ -303,18 +281,29 @@ def validate(ctx: click.Context, **params: Any) -> None:
     help="Output folder.",
 )
 @click.option("--quiet", is_flag=True, help="Print nothing but errors.")
+@click.option(
+    "--log-format",
+    type=click.Choice(LOG_FORMATS),
+    default="text",
+    show_default=True,
+    help="text: progress on a terminal and a summary table; json: one JSON event per line.",
+)
 @handle_errors
-def demo(out: str, quiet: bool) -> None:
+def demo(out: str, quiet: bool, log_format: str) -> None:
     """Run the bundled, invented demo roster end to end."""
-    from attribution.simulate import demo_roster, write_tables
+    from attribution.simulate import demo_tables, write_tables
 
     started = time.perf_counter()
-    with tempfile.TemporaryDirectory(prefix="tiltaudit-demo-") as tmp:
-        paths = write_tables(demo_roster(), Path(tmp))
+    reporter = RunReporter(command="demo", log_format=log_format, quiet=quiet, started=started)
+    with reporter, tempfile.TemporaryDirectory(prefix="tiltaudit-demo-") as tmp:
+        reporter.run_started(out)
+        paths = write_tables(demo_tables(), Path(tmp))
         sources = {name: str(path) for name, path in paths.items()}
         options = RunOptions.build()
-        result = execute_run(sources, options, Path(out), started=started)
-    print_summary(result, _console(quiet), Path(out).resolve())
+        result = execute_run(
+            sources, options, Path(out), started=started, progress=reporter.progress
+        )
+        reporter.finished(result, out)
     sys.exit(result.exit_code)
 
 

@@ -35,9 +35,10 @@ TABLE_COLUMNS: dict[str, dict[str, str]] = {
         "return": FLOAT,
     },
     "portfolio_returns": {"portfolio_id": TEXT, "period_end": DATE, "return": FLOAT},
+    "portfolio_values": {"portfolio_id": TEXT, "as_of": DATE, "value": FLOAT},
 }
 REQUIRED_TABLES = ("holdings", "index_returns", "policy")
-OPTIONAL_TABLES = ("riskfree", "segment_returns", "portfolio_returns")
+OPTIONAL_TABLES = ("riskfree", "segment_returns", "portfolio_returns", "portfolio_values")
 
 TableSource = str | Path | pl.DataFrame | pl.LazyFrame | Any
 

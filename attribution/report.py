@@ -67,7 +67,7 @@ TABLE_FILES = (
 )
 # Optional tables of money terms (issue 4 item 2). Shown, when present, as a section of
 # their own; their columns are rendered as they come (amounts with thousands separators).
-MONEY_TABLES = ("money", "plan")
+MONEY_TABLES = ("plan_total", "money")
 
 REQUIRED_COLUMNS: dict[str, tuple[str, ...]] = {
     "summary": (
@@ -1434,32 +1434,6 @@ def _issue_counts_table(issues: pl.DataFrame) -> str:
     )
 
 
-def _generic_table(name: str, frame: pl.DataFrame) -> str:
-    """Any table as it comes: amounts with separators, dates as ISO text, the rest as text."""
-    columns = frame.columns
-    numeric = {c for c, t in frame.schema.items() if t.is_numeric()}
-    headers = [(c, c in numeric) for c in columns]
-    body = []
-    for r in frame.iter_rows(named=True):
-        cells = []
-        for c in columns:
-            v = r[c]
-            if c in numeric and isinstance(v, float):
-                cells.append(td_num(v, fmt_amount(v)))
-            elif c in numeric:
-                cells.append(td_num(v, fmt_int(v)))
-            else:
-                cells.append(td_text(v))
-        body.append(f"<tr>{''.join(cells)}</tr>")
-    return (
-        f'<div class="scroll"><table data-table="{esc(name)}">'
-        + th_row(headers)
-        + "<tbody>"
-        + "".join(body)
-        + "</tbody></table></div>"
-    )
-
-
 @dataclass(frozen=True)
 class PortfolioFacts:
     """What the plain sentences say about one portfolio, read off the stored tables."""
@@ -1651,16 +1625,129 @@ def section_overview(
     return "".join(parts)
 
 
+def _plan_sentence(total: pl.DataFrame) -> str:
+    """Plain words for the one-row plan_total table: what each effect added or cost."""
+    if total.height != 1:
+        return ""
+    row = total.row(0, named=True)
+
+    def said(name: str, label: str) -> str | None:
+        amount = row.get(f"{name}_money")
+        if not _finite(amount):
+            return None
+        verb = "added" if float(amount) >= 0 else "cost"
+        return (
+            f'{label} {verb} <span data-money="{esc(name)}" data-value="{esc(exact(amount))}">'
+            f"{esc(fmt_amount(abs(float(amount))))}</span>"
+        )
+
+    pieces = [
+        said("timing", "timing"),
+        said("static_allocation", "static allocation"),
+        said("selection", "selection"),
+        said("interaction", "interaction"),
+        said("residual", "the residual (fees, trading, data differences)"),
+    ]
+    active = row.get("active_money")
+    return (
+        f"<p>Across the plan, from the period ending {esc(fmt_date(row['first_period']))} to "
+        f"{esc(fmt_date(row['last_period']))} ({esc(row['n_periods'])} periods; "
+        f"{esc(fmt_amount(row['plan_value_first']))} at the start): "
+        + "; ".join(p for p in pieces if p)
+        + f". In all the managers {'added' if _finite(active) and float(active) >= 0 else 'cost'} "
+        f"{esc(fmt_amount(abs(float(active))) if _finite(active) else DASH)} against the "
+        f"policy mixes; as returns, the plan's active return was "
+        f"{esc(fmt_pct(row['active_return']))}, of which timing "
+        f"{esc(fmt_pct(row['timing']))} (linked).</p>"
+    )
+
+
 def section_money(data: ReportData) -> str:
     parts = ['<h3 id="money">What it came to in money</h3>']
     parts.append(
-        '<p class="note">Effects in currency from the portfolio values given to the run, and '
-        "the plan total weighted by value, as stored in the output tables.</p>"
+        "<p class=\"note\">Each period's effect times the portfolio's value at the start of "
+        "the period, summed over the record (value added); the plan rows weight the roster "
+        "by value period by period. The per-period plan figures are in plan.parquet.</p>"
     )
-    for name, frame in data.money:
-        parts.append(f"<h4>{esc(name)}</h4>")
-        parts.append(_generic_table(name, frame))
+    tables = dict(data.money)
+    total = tables.get("plan_total")
+    if total is not None and total.height == 1:
+        parts.append(_plan_sentence(total))
+        parts.append("<h4>The plan, weighted by value</h4>")
+        parts.append(_money_figures_table("plan_total", total.row(0, named=True), returns=True))
+    money = tables.get("money")
+    if money is not None and money.height:
+        parts.append("<h4>Each portfolio, in money</h4>")
+        parts.append(_money_roster_table(money))
     return "".join(parts)
+
+
+#: The money figures shown, in order: (column stem, label).
+MONEY_FIGURE_LABELS = (
+    ("active", "Active (portfolio − policy)"),
+    ("static_allocation", "Static allocation"),
+    ("timing", "Timing"),
+    ("selection", "Selection"),
+    ("interaction", "Interaction"),
+    ("residual", "Residual"),
+)
+
+
+def fmt_whole_amount(value: object) -> str:
+    """A money amount rounded to whole units, with thousands separators."""
+    if not _finite(value):
+        return DASH
+    return f"{float(value):,.0f}".replace("-", MINUS)
+
+
+def _money_figures_table(name: str, row: Mapping[str, Any], *, returns: bool) -> str:
+    """One row of money figures set out vertically: figure, (linked return), amount."""
+    headers = [("figure", False)] + ([("as a return", True)] if returns else [])
+    headers.append(("in money", True))
+    body = []
+    for stem, label in MONEY_FIGURE_LABELS:
+        amount = row.get(f"{stem}_money")
+        if amount is None and stem == "interaction":
+            continue
+        cells = [td_text(label)]
+        if returns:
+            value = row.get("active_return" if stem == "active" else stem)
+            cells.append(td_num(value, fmt_pct(value)))
+        cells.append(td_num(amount, fmt_whole_amount(amount), extra=f' data-col="{stem}_money"'))
+        body.append(f'<tr data-figure="{esc(stem)}">{"".join(cells)}</tr>')
+    return (
+        f'<div class="scroll"><table data-table="{esc(name)}">'
+        + th_row(headers)
+        + "<tbody>"
+        + "".join(body)
+        + "</tbody></table></div>"
+    )
+
+
+def _money_roster_table(money: pl.DataFrame) -> str:
+    """Per portfolio: value at the start and each effect in money (whole units)."""
+    shown = [
+        (stem, label)
+        for stem, label in MONEY_FIGURE_LABELS
+        if money[f"{stem}_money"].is_not_null().any()
+    ]
+    headers = [("portfolio", False), ("periods", True), ("value at start", True)]
+    headers += [(label.split(" (")[0].lower(), True) for _, label in shown]
+    body = []
+    for r in money.sort(PID).iter_rows(named=True):
+        cells = [td_text(r[PID]), td_num(r["n_periods_valued"], fmt_int(r["n_periods_valued"]))]
+        cells.append(td_num(r["value_first"], fmt_whole_amount(r["value_first"])))
+        for stem, _ in shown:
+            v = r[f"{stem}_money"]
+            cells.append(td_num(v, fmt_whole_amount(v), extra=f' data-col="{stem}_money"'))
+        body.append(f'<tr data-portfolio="{esc(r[PID])}">{"".join(cells)}</tr>')
+    return (
+        '<div class="scroll"><table data-table="money">'
+        + th_row(headers)
+        + "<tbody>"
+        + "".join(body)
+        + "</tbody></table></div>"
+    )
 
 
 def _kpis(r: Mapping[str, Any], effects: list[tuple[str, str, str, str]]) -> str:
@@ -2150,15 +2237,18 @@ def section_portfolio(
         if windows.height:
             parts.append("<h3>Over time windows</h3>")
             parts.append(_windows_tables(windows, effects_summary))
-    money = [
-        (name, frame.filter(pl.col(PID) == pid).drop(PID))
-        for name, frame in data.money
-        if PID in frame.columns
-    ]
-    money = [(name, rows) for name, rows in money if rows.height]
-    if money:
+    money = dict(data.money).get("money")
+    mine = None if money is None else money.filter(pl.col(PID) == pid)
+    if mine is not None and mine.height == 1:
+        r = mine.row(0, named=True)
         parts.append("<h3>In money</h3>")
-        parts.extend(_generic_table(name, rows) for name, rows in money)
+        parts.append(
+            f"<p>Valued over {esc(r['n_periods_valued'])} periods "
+            f"({esc(fmt_date(r['first_period']))} to {esc(fmt_date(r['last_period']))}), "
+            f"{esc(fmt_whole_amount(r['value_first']))} at the start: each period's effect "
+            "times the value at its start, summed.</p>"
+        )
+        parts.append(_money_figures_table("money", r, returns=False))
     if data.data_issues is not None:
         mine = data.data_issues.filter(pl.col(PID) == pid)
         if mine.height:

@@ -25,6 +25,7 @@ from attribution.calendar import Calendar, align_dates, build_calendar
 from attribution.decompose import EFFECTS_ORDER, SERIES_ORDER, run_shard
 from attribution.errors import EXIT_OK, EXIT_SKIPPED, OptionError, ReadError
 from attribution.load import TableReader, TableSource
+from attribution.money import money_tables
 from attribution.options import RunOptions
 from attribution.summary import summary_frame, windows_frame
 from attribution.timing import TimingOptions, TimingResult, combine_timing, evaluate_timing
@@ -47,6 +48,7 @@ DATE_COLUMNS = {
     "riskfree": "period_end",
     "segment_returns": "period_end",
     "portfolio_returns": "period_end",
+    "portfolio_values": "as_of",
 }
 
 
@@ -203,6 +205,7 @@ class Prepared:
     shared: SharedInputs
     timing: TimingOptions | None = None
     timing_note: str | None = None
+    values: pl.DataFrame | None = None
 
 
 def timing_options(options: RunOptions) -> TimingOptions:
@@ -235,7 +238,10 @@ def prepare(sources: Mapping[str, TableSource | None], options: RunOptions) -> P
     elif shared.riskless is None:
         timing = None
         note = "timing tests not run: no riskless source (give --riskfree or --cash-class)"
-    return Prepared(readers=readers, shared=shared, timing=timing, timing_note=note)
+    values = None
+    if "portfolio_values" in readers:
+        values = _aligned(readers["portfolio_values"].read_all(), "portfolio_values", options)
+    return Prepared(readers=readers, shared=shared, timing=timing, timing_note=note, values=values)
 
 
 def run_roster(
@@ -263,6 +269,8 @@ def run_roster(
         msg = "holdings: the table has no rows; expected at least one portfolio's weights."
         raise ReadError(msg)
     others = [readers[n].portfolio_ids() for n in PORTFOLIO_TABLES[1:] if n in readers]
+    if prepared.values is not None:
+        others.append(prepared.values.get_column(PID).drop_nulls().unique())
     issues = [empty_issues(), orphan_issues(held, others)]
     timings["read_and_validate"] += time.perf_counter() - clock
 
@@ -344,6 +352,12 @@ def run_roster(
             "roster": found.roster,
             "power": found.power,
         }
+    if prepared.values is not None:
+        clock = time.perf_counter()
+        money = money_tables(series, prepared.values, linking=options.linking)
+        extra.update(money.tables())
+        issues.append(money.issues)
+        timings["money"] = time.perf_counter() - clock
     return RunResult(
         effects=effects,
         summary=summary,

@@ -39,7 +39,9 @@ __all__ = [
     "TABLES",
     "AssetClassSpec",
     "asset_classes",
+    "demo_portfolio_values",
     "demo_roster",
+    "demo_tables",
     "factor_index_returns",
     "hold_between_rebalances",
     "month_ends",
@@ -459,6 +461,17 @@ _DEMO_MANAGER_PARAMS = (
         rebalance="quarterly",
     ),
 )
+#: Invented mandate sizes (plan currency) at the start of each manager's record.
+DEMO_MANDATES = {
+    "ambrisk_multiasset": 640e6,
+    "dellowmere_dynamic": 410e6,
+    "korvane_balanced": 880e6,
+    "orvelle_partners": 350e6,
+    "pentaloom_global": 520e6,
+    "saltmarrow_trust": 300e6,
+    "tibbrenn_capital": 120e6,
+    "wistrel_advisors": 460e6,
+}
 DEMO_SHIFT_RANGE = (0.10, 0.15)
 DEMO_REPORTING_NOISE = 0.0002
 
@@ -607,6 +620,42 @@ def demo_roster(*, seed: int = DEMO_SEED) -> dict[str, pl.DataFrame]:
             )
     tables["policy"] = pl.concat(policy_rows)
     return {name: tables[name] for name in TABLES}
+
+
+def demo_portfolio_values(portfolio_returns: pl.DataFrame) -> pl.DataFrame:
+    """The demo's ``portfolio_values``: each mandate grown by its reported returns.
+
+    V at the start of a manager's first period is ``DEMO_MANDATES`` (invented); then
+    V_t = V_{t-1} (1 + R_t) at every period end, with no contributions or withdrawals. The
+    as_of dates are the first period's start and every period end of the record.
+    """
+    rows = portfolio_returns.sort("portfolio_id", "period_end").with_columns(
+        value=pl.col("portfolio_id").replace_strict(DEMO_MANDATES, return_dtype=pl.Float64)
+        * (1.0 + pl.col("return")).cum_prod().over("portfolio_id")
+    )
+    first = (
+        rows.group_by("portfolio_id", maintain_order=True)
+        .agg(pl.col("period_end").first())
+        .select(
+            "portfolio_id",
+            pl.col("period_end").map_elements(previous_month_end, return_dtype=pl.Date),
+            pl.col("portfolio_id")
+            .replace_strict(DEMO_MANDATES, return_dtype=pl.Float64)
+            .alias("value"),
+        )
+    )
+    return (
+        pl.concat([first, rows.select("portfolio_id", "period_end", "value")])
+        .rename({"period_end": "as_of"})
+        .sort("portfolio_id", "as_of")
+    )
+
+
+def demo_tables(*, seed: int = DEMO_SEED) -> dict[str, pl.DataFrame]:
+    """The demo roster's input tables with its ``portfolio_values`` (what ``tiltaudit demo``
+    runs and ``fixtures/demo`` holds)."""
+    tables = demo_roster(seed=seed)
+    return {**tables, "portfolio_values": demo_portfolio_values(tables["portfolio_returns"])}
 
 
 # --------------------------------------------------------------------------------------

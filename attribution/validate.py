@@ -66,6 +66,18 @@ ISSUE_CODES: dict[str, tuple[str, str]] = {
         "warning",
         "no reported return for a period: the computed return is used for it",
     ),
+    "value_invalid": (
+        "warning",
+        "a portfolio value that is empty, not finite or not positive: the row is ignored",
+    ),
+    "value_duplicate": (
+        "warning",
+        "a portfolio and date given twice in portfolio_values: those rows are ignored",
+    ),
+    "value_missing": (
+        "warning",
+        "periods with no portfolio value on or before their start: no money figures for them",
+    ),
     "test_too_few_periods": ("warning", "too few decisions or periods for a timing test"),
     "test_undefined": (
         "warning",

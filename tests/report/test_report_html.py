@@ -27,8 +27,8 @@ from report_data import ODD_CLASS, SHORT_ID, XSS_ID
 
 from attribution import svg
 from attribution.errors import ReadError, SchemaError
+from attribution.money import money_tables
 from attribution.report import (
-    MONEY_TABLES,
     ROSTER_BAR_MAX,
     WEIGHT_MARK_BUDGET,
     build_report,
@@ -548,18 +548,44 @@ def test_long_record_weights_are_block_means() -> None:
 
 def test_money_section_only_when_present(full_tables) -> None:
     assert 'id="money"' not in build_report(full_tables)
-    money = pl.DataFrame(
-        {"portfolio_id": ["aster_fund", XSS_ID], "timing_money": [1234567.891, -2500.5]}
+    series = full_tables["series"]
+    ids = sorted(series["portfolio_id"].unique().to_list())
+    # Invented values: one amount per portfolio at the first period's start, carried forward.
+    first = series.group_by("portfolio_id").agg(pl.col("period_start").min().alias("as_of"))
+    values = first.with_columns(
+        value=pl.col("portfolio_id").replace_strict(
+            {pid: 1_000_000.0 * (k + 1) for k, pid in enumerate(ids)}, return_dtype=pl.Float64
+        )
     )
-    html = build_report({**full_tables, MONEY_TABLES[0]: money})
+    money = money_tables(series, values, linking="carino")
+    html = build_report({**full_tables, **money.tables()})
     assert 'id="money"' in html
-    assert html.count("1,234,567.89") == 2  # the roster's money table and the portfolio's
-    assert "\u22122,500.50" in html
     page = Page(html)
-    section = page.find("section", data_portfolio="aster_fund")[0]
-    cells = [n for n in page.find("td") if within(n, section) and n["text"] == "1,234,567.89"]
+    # The roster's money table: one row per portfolio, cells carry the stored amounts.
+    roster_money = page.find("table", data_table="money")[0]
+    rows = [
+        n
+        for n in page.find("tr")
+        if n["attrs"].get("data-portfolio") is not None and within(n, roster_money)
+    ]
+    assert sorted(n["attrs"]["data-portfolio"] for n in rows) == sorted(ids)
+    stored = money.money.row(0, named=True)
+    pid = stored["portfolio_id"]
+    section = page.find("section", data_portfolio=pid)[0]
+    cells = [
+        n
+        for n in page.find("td")
+        if within(n, section) and n["attrs"].get("data-col") == "timing_money"
+    ]
     assert len(cells) == 1
-    assert float(cells[0]["attrs"]["data-value"]) == 1234567.891
+    assert float(cells[0]["attrs"]["data-value"]) == stored["timing_money"]
+    # The plan sentence states the stored plan total.
+    total = money.plan_total.row(0, named=True)
+    spans = [n for n in page.find("span") if n["attrs"].get("data-money") == "timing"]
+    assert float(spans[0]["attrs"]["data-value"]) == total["timing_money"]
+    # A user-supplied id is text in the money table too.
+    assert "<script>alert(1)</script>" not in html
+    assert XSS_ID in ids
 
 
 # -- chart primitives ----------------------------------------------------------------------------

@@ -20,10 +20,12 @@ from scipy import stats
 from attribution.errors import OptionError
 from attribution.simulate import (
     DEMO_MANAGERS,
+    DEMO_MANDATES,
     DEMO_POLICY,
     DEMO_POLICY_CHANGE,
     TABLES,
     demo_roster,
+    demo_tables,
     month_ends,
     simulate_roster,
     write_simulated_roster,
@@ -180,12 +182,28 @@ def slope_test(decisions: pl.DataFrame) -> tuple[float, float]:
 
 
 def test_committed_demo_files_equal_a_fresh_demo_roster(demo: dict[str, pl.DataFrame]) -> None:
+    fresh = demo_tables()
     assert sorted(p.name for p in FIXTURES.glob("*.parquet")) == sorted(
-        f"{t}.parquet" for t in TABLES
+        f"{t}.parquet" for t in fresh
     )
-    for name in TABLES:
+    assert list(fresh) == [*TABLES, "portfolio_values"]
+    for name in fresh:
         committed = pl.read_parquet(FIXTURES / f"{name}.parquet")
-        assert_frame_equal(committed, demo[name], check_exact=True)
+        assert_frame_equal(committed, fresh[name], check_exact=True)
+    for name in TABLES:
+        assert_frame_equal(fresh[name], demo[name], check_exact=True)
+
+
+def test_demo_values_grow_with_reported_returns(demo: dict[str, pl.DataFrame]) -> None:
+    values = demo_tables()["portfolio_values"]
+    reported = demo["portfolio_returns"]
+    for pid, start in DEMO_MANDATES.items():
+        path = values.filter(pl.col("portfolio_id") == pid).sort("as_of")["value"].to_numpy()
+        r = reported.filter(pl.col("portfolio_id") == pid).sort("period_end")["return"]
+        assert path[0] == start
+        # V_t = V_{t-1} (1 + R_t): the demo's mandates have no flows.
+        # (compared on the return scale: a ratio minus one carries ~1e-16 absolute error)
+        np.testing.assert_allclose(path[1:] / path[:-1] - 1.0, r.to_numpy(), rtol=0, atol=1e-14)
 
 
 @pytest.mark.parametrize("roster", ["demo", "small_roster"])
