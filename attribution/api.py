@@ -54,6 +54,13 @@ def build_manifest(
         "exit_code": result.exit_code,
         "notes": list(result.notes),
         "finished_at": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
+        "incremental": {"mode": "full", **result.reuse},
+        "fingerprints": {
+            "shared": result.shared_fingerprint,
+            "portfolios": {}
+            if result.fingerprints is None
+            else dict(result.fingerprints.sort("portfolio_id").iter_rows()),
+        },
         "timings_seconds": dict(result.timings),
     }
 

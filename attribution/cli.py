@@ -150,8 +150,12 @@ def execute_run(
     started: float,
     write_report: bool = True,
     progress: Callable[[int, int], None] | None = None,
+    incremental: bool = False,
 ) -> RunResult:
     """Run the roster and write its outputs atomically under the folder's lock.
+
+    ``incremental=True`` re-evaluates only the portfolios whose inputs changed since the
+    run recorded in ``out_dir`` (:mod:`attribution.incremental`); the rest are copied.
 
     ``write_report=False`` leaves report.html out (``tiltaudit report`` can build it later
     from the stored tables). ``progress(done, total)`` is handed to the runner (portfolios
@@ -159,13 +163,23 @@ def execute_run(
     """
     from attribution.api import build_manifest, file_hashes
     from attribution.decompose import EFFECTS_ORDER
+    from attribution.incremental import load_previous, shared_fingerprint, with_incremental_note
     from attribution.outputs import ParquetAppender, StagedOutput, output_lock
     from attribution.report import build_report
 
     prepared = prepare(sources, options)  # bad input fails here, before anything is written
     with output_lock(out_dir), StagedOutput(out_dir) as staged:
+        previous, reason = None, ""
+        if incremental:
+            shared = shared_fingerprint(
+                prepared.shared.index_returns, prepared.shared.riskless, options.to_dict()
+            )
+            previous, reason = load_previous(out_dir, shared)
         effects = ParquetAppender(staged.path("effects.parquet"))
-        result = run_roster(prepared, options, effects_sink=effects, progress=progress)
+        result = run_roster(
+            prepared, options, effects_sink=effects, progress=progress, previous=previous
+        )
+        result = with_incremental_note(result, incremental=incremental, reason=reason)
         effects.close(empty_schema=dict.fromkeys(EFFECTS_ORDER, pl.Float64()))
         tables = result.tables()
         counts = {name: frame.height for name, frame in tables.items()}
@@ -196,6 +210,15 @@ def main() -> None:
 @click.option("--out", "out", type=click.Path(file_okay=False), help="Output folder.")
 @run_options
 @click.option(
+    "--incremental",
+    is_flag=True,
+    default=None,
+    help="Re-evaluate only portfolios whose inputs changed since the run in --out.",
+)
+@click.option(
+    "--full", is_flag=True, default=None, help="Evaluate every portfolio (wins over --incremental)."
+)
+@click.option(
     "--report/--no-report",
     "write_report",
     default=True,
@@ -225,6 +248,7 @@ def run(
         if not out:
             raise OptionError("The 'out' option is required: give the output folder with --out.")
         reporter.run_started(out)
+        incremental = bool(params.pop("incremental", None)) and not params.pop("full", None)
         sources, options = _split(params)
         result = execute_run(
             sources,
@@ -233,6 +257,7 @@ def run(
             started=started,
             write_report=write_report,
             progress=reporter.progress,
+            incremental=incremental,
         )
         reporter.finished(result, out)
     sys.exit(result.exit_code)

@@ -24,6 +24,7 @@ import pyarrow as pa
 from attribution.calendar import Calendar, align_dates, build_calendar
 from attribution.decompose import EFFECTS_ORDER, SERIES_ORDER, run_shard
 from attribution.errors import EXIT_OK, EXIT_SKIPPED, OptionError, ReadError
+from attribution.incremental import PreviousRun, portfolio_fingerprints, shared_fingerprint
 from attribution.load import TableReader, TableSource
 from attribution.money import money_tables
 from attribution.options import RunOptions
@@ -81,6 +82,9 @@ class RunResult:
     extra_tables: dict[str, pl.DataFrame] = field(default_factory=dict)
     notes: tuple[str, ...] = ()
     sources: dict[str, Any] = field(default_factory=dict, repr=False)
+    fingerprints: pl.DataFrame | None = field(default=None, repr=False)
+    shared_fingerprint: str | None = None
+    reuse: dict[str, Any] = field(default_factory=dict)
 
     def with_sources(self, sources: Mapping[str, Any]) -> RunResult:
         """The same result remembering its inputs (for the manifest of :meth:`write`)."""
@@ -251,6 +255,7 @@ def run_roster(
     shard_size: int = DEFAULT_SHARD_SIZE,
     effects_sink: Callable[[Callable[[], pa.Table]], None] | None = None,
     progress: Callable[[int, int], None] | None = None,
+    previous: PreviousRun | None = None,
 ) -> RunResult:
     """Run the decomposition, linking and summaries for every portfolio that can run.
 
@@ -258,7 +263,10 @@ def run_roster(
     With ``effects_sink`` each shard's effects table is handed over, as the function that
     builds it (pyarrow; the sink may call it on its own thread), and not kept.
     ``progress(done, total)`` is called once before the first shard (done = 0) and after
-    every shard, with portfolios counted.
+    every shard, with portfolios counted. With ``previous`` (an incremental run, see
+    :mod:`attribution.incremental`) portfolios whose fingerprint is unchanged are copied from
+    the previous run's tables instead of being evaluated; roster-level figures are always
+    recomputed.
     """
     timings: dict[str, float] = {"read_and_validate": 0.0, "decompose": 0.0, "summarise": 0.0}
     clock = time.perf_counter()
@@ -282,6 +290,8 @@ def run_roster(
     ppy = shared.calendar.periods_per_year
     if progress is not None:
         progress(0, len(ids))
+    fingerprint_parts: list[pl.DataFrame] = []
+    n_reused = 0
     for start in range(0, len(ids), shard_size):
         shard = ids[start : start + shard_size]
         clock = time.perf_counter()
@@ -291,44 +301,65 @@ def run_roster(
             else None
             for name in PORTFOLIO_TABLES
         }
+        fingerprints = portfolio_fingerprints(tables, shard)
+        fingerprint_parts.append(fingerprints)
+        kept = previous.unchanged(fingerprints) if previous is not None else []
+        if kept:
+            tables = {
+                name: None if frame is None else frame.filter(~pl.col(PID).is_in(kept))
+                for name, frame in tables.items()
+            }
+            n_reused += len(kept)
         timings["read_and_validate"] += time.perf_counter() - clock
         clock = time.perf_counter()
-        part = run_shard(tables, shared.calendar, shared.index_returns, options)
+        new = tables["holdings"] is not None and tables["holdings"].height > 0
+        part = run_shard(tables, shared.calendar, shared.index_returns, options) if new else None
         timings["decompose"] += time.perf_counter() - clock
-        clock = time.perf_counter()
-        summary_parts.append(
-            summary_frame(part.periods, linking=options.linking, periods_per_year=ppy)
-        )
-        window_parts.append(
-            windows_frame(part.periods, linking=options.linking, periods_per_year=ppy)
-        )
-        timings["summarise"] += time.perf_counter() - clock
-        series_parts.append(part.series)
-        issues.append(part.issues)
-        skipped.extend(part.skipped)
-        shard_effects = None if effects_sink is not None else part.effects
-        if effects_sink is not None:
-            effects_sink(part.effects_table)
-        else:
-            effects_parts.append(part.effects)
-        if prepared.timing is not None:
+        if previous is None:
+            assert part is not None
             clock = time.perf_counter()
-            assert shared.riskless is not None
-            # The battery works on padded arrays where NaN marks "not available" (periods
-            # outside a record, undefined tests); numpy's warnings about NaN arithmetic there
-            # are expected, and every such row is reported through its own issue code.
-            with np.errstate(invalid="ignore", divide="ignore"):
-                found = evaluate_timing(
-                    part.effects if shard_effects is None else shard_effects,
-                    part.series,
-                    shared.index_returns,
-                    shared.riskless,
-                    options=prepared.timing,
-                )
-            timing_parts.append(found)
-            timings["timing_tests"] = timings.get("timing_tests", 0.0) + (
-                time.perf_counter() - clock
+            summary_parts.append(
+                summary_frame(part.periods, linking=options.linking, periods_per_year=ppy)
             )
+            window_parts.append(
+                windows_frame(part.periods, linking=options.linking, periods_per_year=ppy)
+            )
+            timings["summarise"] += time.perf_counter() - clock
+            series_parts.append(part.series)
+            issues.append(part.issues)
+            skipped.extend(part.skipped)
+            shard_effects = None if effects_sink is not None else part.effects
+            if effects_sink is not None:
+                effects_sink(part.effects_table)
+            else:
+                effects_parts.append(part.effects)
+            if prepared.timing is not None:
+                clock = time.perf_counter()
+                timing_parts.append(
+                    _timing_of(
+                        part.effects if shard_effects is None else shard_effects,
+                        part.series,
+                        prepared,
+                    )
+                )
+                timings["timing_tests"] = timings.get("timing_tests", 0.0) + (
+                    time.perf_counter() - clock
+                )
+        else:
+            clock = time.perf_counter()
+            merged = _merge_with_previous(part, previous, kept, prepared, options, ppy)
+            timings["summarise"] += time.perf_counter() - clock
+            summary_parts.append(merged["summary"])
+            window_parts.append(merged["summary_windows"])
+            series_parts.append(merged["series"])
+            issues.append(merged["data_issues"])
+            skipped.extend(merged["skipped"])
+            if effects_sink is not None:
+                effects_sink(merged["effects"])
+            else:
+                effects_parts.append(merged["effects"])
+            if merged["timing"] is not None:
+                timing_parts.append(merged["timing"])
         if progress is not None:
             progress(min(start + shard_size, len(ids)), len(ids))
     effects = (
@@ -359,6 +390,11 @@ def run_roster(
         issues.append(money.issues)
         timings["money"] = time.perf_counter() - clock
     return RunResult(
+        fingerprints=pl.concat(fingerprint_parts) if fingerprint_parts else None,
+        shared_fingerprint=shared_fingerprint(
+            shared.index_returns, shared.riskless, options.to_dict()
+        ),
+        reuse={"reused": n_reused, "evaluated": len(ids) - n_reused},
         effects=effects,
         summary=summary,
         summary_windows=pl.concat(window_parts),
@@ -371,3 +407,114 @@ def run_roster(
         extra_tables=extra,
         notes=notes,
     )
+
+
+def _timing_of(effects: pl.DataFrame, series: pl.DataFrame, prepared: Prepared) -> TimingResult:
+    """The timing battery of one shard's evaluated portfolios."""
+    shared = prepared.shared
+    assert shared.riskless is not None
+    assert prepared.timing is not None
+    # The battery works on padded arrays where NaN marks "not available" (periods outside a
+    # record, undefined tests); numpy's warnings about NaN arithmetic there are expected,
+    # and every such row is reported through its own issue code.
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return evaluate_timing(
+            effects, series, shared.index_returns, shared.riskless, options=prepared.timing
+        )
+
+
+#: Issue codes recomputed for the whole roster in every run (never copied from a previous
+#: run): the money checks, which read portfolio_values (outside the fingerprints).
+RECOMPUTED_ISSUE_PREFIX = "value_"
+#: Columns that the roster-level timing step adds to summary and series.
+VERDICT_COLUMNS = ("timing_evidence", "returns_holdings_disagree")
+
+
+def _previous_rows(previous: PreviousRun, name: str, kept: list[str]) -> pl.DataFrame | None:
+    lazy = previous.table(name)
+    if lazy is None:
+        return None
+    # The range filter lets the Parquet reader skip row groups by their statistics.
+    lo, hi = min(kept), max(kept)
+    return lazy.filter(
+        pl.col(PID).is_between(pl.lit(lo), pl.lit(hi)) & pl.col(PID).is_in(kept)
+    ).collect()
+
+
+def _stable_by_portfolio(*frames: pl.DataFrame | None) -> pl.DataFrame:
+    parts = [f for f in frames if f is not None and f.height]
+    if not parts:
+        first = next(f for f in frames if f is not None)
+        return first.clear()
+    # A shard's rows come portfolio by portfolio in sorted id order; copied and new rows are
+    # put back in that order, each portfolio's rows keeping their own order.
+    return pl.concat(parts, how="vertical_relaxed").sort(PID, maintain_order=True)
+
+
+def _merge_with_previous(
+    part: Any,
+    previous: PreviousRun,
+    kept: list[str],
+    prepared: Prepared,
+    options: RunOptions,
+    ppy: int,
+) -> dict[str, Any]:
+    """One shard of an incremental run: the evaluated portfolios' new rows merged, in the
+    full run's order, with the unchanged portfolios' rows copied from the previous run."""
+    new: dict[str, pl.DataFrame | None] = dict.fromkeys(
+        ("effects", "series", "summary", "summary_windows", "data_issues")
+    )
+    timing_new: TimingResult | None = None
+    skipped: list[str] = list(part.skipped) if part is not None else []
+    if part is not None:
+        new["effects"] = part.effects
+        new["series"] = part.series
+        new["summary"] = summary_frame(part.periods, linking=options.linking, periods_per_year=ppy)
+        new["summary_windows"] = windows_frame(
+            part.periods, linking=options.linking, periods_per_year=ppy
+        )
+        new["data_issues"] = part.issues
+        if prepared.timing is not None:
+            timing_new = _timing_of(part.effects, part.series, prepared)
+    old: dict[str, pl.DataFrame | None] = dict.fromkeys(new)
+    timing_old: dict[str, pl.DataFrame | None] = {}
+    if kept:
+        for name in new:
+            old[name] = _previous_rows(previous, name, kept)
+        issues = old["data_issues"]
+        assert issues is not None
+        old["data_issues"] = issues.filter(~pl.col("code").str.starts_with(RECOMPUTED_ISSUE_PREFIX))
+        skipped += issues.filter(pl.col("severity") == "error")[PID].unique().to_list()
+        summary = old["summary"]
+        assert summary is not None
+        old["summary"] = summary.drop([c for c in VERDICT_COLUMNS if c in summary.columns])
+        series = old["series"]
+        assert series is not None
+        extra_cols = [c for c in series.columns if c not in SERIES_ORDER]
+        timing_old["series_extra"] = series.select(PID, "period_end", *extra_cols)
+        old["series"] = series.select(SERIES_ORDER)
+        if prepared.timing is not None:
+            timing_old["timing_tests"] = _previous_rows(previous, "timing_tests", kept)
+            timing_old["power"] = _previous_rows(previous, "power", kept)
+    merged: dict[str, Any] = {name: _stable_by_portfolio(old[name], new[name]) for name in new}
+    if merged["effects"].height:
+        merged["effects"] = merged["effects"].select(EFFECTS_ORDER)
+    merged["skipped"] = sorted(set(skipped))
+    merged["timing"] = None
+    if prepared.timing is not None:
+        pieces = [p for p in (timing_new,) if p is not None]
+        tests_old, power_old = timing_old.get("timing_tests"), timing_old.get("power")
+        if kept and (tests_old is None or power_old is None):
+            msg = "incremental: the previous run has no timing tables to copy"
+            raise ReadError(msg)
+        merged["timing"] = TimingResult(
+            timing_tests=_stable_by_portfolio(tests_old, *(p.timing_tests for p in pieces)),
+            verdicts=pieces[0].verdicts if pieces else pl.DataFrame(),
+            roster=pieces[0].roster if pieces else pl.DataFrame(),
+            power=_stable_by_portfolio(power_old, *(p.power for p in pieces)),
+            series_extra=_stable_by_portfolio(
+                timing_old.get("series_extra"), *(p.series_extra for p in pieces)
+            ),
+            issues=pl.concat([p.issues for p in pieces]) if pieces else empty_issues(),
+        )
+    return merged

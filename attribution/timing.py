@@ -902,8 +902,6 @@ def combine_timing(parts: list[TimingResult], options: TimingOptions) -> TimingR
     them: the Benjamini–Hochberg q-values per test, the verdicts that read them, and the
     ``roster`` table (counts and Storey's π0).
     """
-    if len(parts) == 1:
-        return parts[0]
     tests = pl.concat([p.timing_tests for p in parts]).drop("q_value", "q_value_adverse")
     tests = _add_q_values(tests)
     tests = tests.select(parts[0].timing_tests.columns)
