@@ -151,11 +151,13 @@ def execute_run(
     write_report: bool = True,
     progress: Callable[[int, int], None] | None = None,
     incremental: bool = False,
+    partitioned: bool = False,
 ) -> RunResult:
     """Run the roster and write its outputs atomically under the folder's lock.
 
     ``incremental=True`` re-evaluates only the portfolios whose inputs changed since the
     run recorded in ``out_dir`` (:mod:`attribution.incremental`); the rest are copied.
+    ``partitioned=True`` writes effects and series as Hive-partitioned folders.
 
     ``write_report=False`` leaves report.html out (``tiltaudit report`` can build it later
     from the stored tables). ``progress(done, total)`` is handed to the runner (portfolios
@@ -195,7 +197,13 @@ def execute_run(
                 manifest=manifest,
             )
             extra_files["report.html"] = report.encode("utf-8")
-        staged.commit(tables, manifest=manifest, row_counts=counts, extra_files=extra_files)
+        staged.commit(
+            tables,
+            manifest=manifest,
+            row_counts=counts,
+            extra_files=extra_files,
+            partitioned=partitioned,
+        )
     return result
 
 
@@ -217,6 +225,12 @@ def main() -> None:
 )
 @click.option(
     "--full", is_flag=True, default=None, help="Evaluate every portfolio (wins over --incremental)."
+)
+@click.option(
+    "--partitioned",
+    is_flag=True,
+    default=None,
+    help="Write effects and series as Hive-partitioned folders (period_year=YYYY/).",
 )
 @click.option(
     "--report/--no-report",
@@ -248,7 +262,9 @@ def run(
         if not out:
             raise OptionError("The 'out' option is required: give the output folder with --out.")
         reporter.run_started(out)
-        incremental = bool(params.pop("incremental", None)) and not params.pop("full", None)
+        full = bool(params.pop("full", None))
+        incremental = bool(params.pop("incremental", None)) and not full
+        partitioned = bool(params.pop("partitioned", None))
         sources, options = _split(params)
         result = execute_run(
             sources,
@@ -258,6 +274,7 @@ def run(
             write_report=write_report,
             progress=reporter.progress,
             incremental=incremental,
+            partitioned=partitioned,
         )
         reporter.finished(result, out)
     sys.exit(result.exit_code)

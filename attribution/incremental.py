@@ -118,8 +118,9 @@ class PreviousRun:
 
     def table(self, name: str) -> pl.LazyFrame | None:
         """A previous output table, lazily (None when the run did not write it)."""
-        path = self.folder / f"{name}.parquet"
-        return pl.scan_parquet(path) if path.is_file() else None
+        from attribution.outputs import scan_output_table
+
+        return scan_output_table(self.folder, name)
 
 
 def load_previous(folder: Path, shared: str) -> tuple[PreviousRun | None, str]:
@@ -143,10 +144,12 @@ def load_previous(folder: Path, shared: str) -> tuple[PreviousRun | None, str]:
             "a shared input (index_returns, riskfree), an option or the version changed since "
             "the previous run: every portfolio evaluated"
         )
+    from attribution.outputs import scan_output_table
+
     missing = [
         name
         for name in ("effects", "series", "summary", "summary_windows", "data_issues")
-        if not (folder / f"{name}.parquet").is_file()
+        if scan_output_table(folder, name) is None
     ]
     if missing:
         return (

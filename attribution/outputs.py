@@ -64,6 +64,64 @@ EFFECTS_COMPRESSION = "lz4"
 TABLE_COMPRESSION = "lz4"
 ROW_GROUP_SIZE = 1 << 20
 
+#: With ``--partitioned`` these tables are written as Hive-partitioned folders
+#: (``<table>/period_year=YYYY/part-0.parquet``) instead of single files: the warehouse
+#: layout loaders pick up by folder. The partition column is the year of period_end.
+PARTITIONED_TABLES = ("effects", "series")
+PARTITION_COLUMN = "period_year"
+
+
+def partition_parquet(source: Path, folder: Path) -> None:
+    """Rewrite one Parquet file as a Hive-partitioned folder by the year of period_end.
+
+    Streams record batches (memory follows a batch, not the table) and keeps the rows'
+    order within each partition, so a reader that goes through the partitions in year order
+    and then orders by portfolio_id (stably) gets the file's row order back.
+    """
+    import pyarrow.compute as pc
+    import pyarrow.dataset as ds
+
+    dataset = ds.dataset(source, format="parquet")
+    schema = dataset.schema.append(pa.field(PARTITION_COLUMN, pa.int32()))
+
+    def batches() -> Iterator[pa.RecordBatch]:
+        for batch in dataset.to_batches(use_threads=False):
+            year = pc.cast(pc.year(batch.column("period_end")), pa.int32())
+            yield pa.RecordBatch.from_arrays([*batch.columns, year], schema=schema)
+
+    ds.write_dataset(
+        pa.RecordBatchReader.from_batches(schema, batches()),
+        folder,
+        format="parquet",
+        partitioning=ds.partitioning(pa.schema([(PARTITION_COLUMN, pa.int32())]), flavor="hive"),
+        basename_template="part-{i}.parquet",
+        existing_data_behavior="error",
+        preserve_order=True,
+        use_threads=False,
+        max_rows_per_group=ROW_GROUP_SIZE,
+        file_options=ds.ParquetFileFormat().make_write_options(compression=TABLE_COMPRESSION),
+    )
+
+
+def scan_output_table(folder: Path, name: str) -> pl.LazyFrame | None:
+    """An output table of a results folder, lazily: ``<name>.parquet`` or, when written
+    with ``--partitioned``, the ``<name>/`` folder (its partition column dropped, rows in the
+    file's order when ordered stably by portfolio_id). None when the run did not write it."""
+    path = folder / f"{name}.parquet"
+    if path.is_file():
+        return pl.scan_parquet(path)
+    part = folder / name
+    if part.is_dir():
+        files = sorted(part.glob(f"{PARTITION_COLUMN}=*/*.parquet"))
+        if not files:
+            return None
+        return (
+            pl.scan_parquet(files, hive_partitioning=True)
+            .drop(PARTITION_COLUMN)
+            .sort("portfolio_id", maintain_order=True)
+        )
+    return None
+
 
 def sha256_of(path: Path) -> str:
     """Hex SHA-256 of a file, read in 1 MiB chunks."""
@@ -141,10 +199,21 @@ def sql_files() -> list[tuple[str, str]]:
 
 @dataclass(frozen=True)
 class ParquetView:
-    """A Parquet file to expose in DuckDB as a view: where it is now, where it will be read."""
+    """A Parquet file to expose in DuckDB as a view: where it is now, where it will be read.
+
+    ``partitioned``: the path is a Hive-partitioned folder (``--partitioned``)."""
 
     staged: Path
     final: Path
+    partitioned: bool = False
+
+    def reader(self) -> str:
+        """The DuckDB table function call reading ``path`` (the macro's parameter)."""
+        if self.partitioned:
+            return (
+                f"read_parquet(path || '/{PARTITION_COLUMN}=*/*.parquet', hive_partitioning = true)"
+            )
+        return "read_parquet(path)"
 
 
 def _sql_text(value: object) -> str:
@@ -162,7 +231,7 @@ def write_duckdb(db_path: Path, parquet: Mapping[str, Path | ParquetView]) -> li
             if isinstance(source, ParquetView):
                 con.execute(
                     f"create macro {name}_parquet(path := {_sql_text(source.staged)}) as table "
-                    "select * from read_parquet(path)"
+                    f"select * from {source.reader()}"
                 )
                 con.execute(f"create view {name} as select * from {name}_parquet()")
             else:
@@ -175,7 +244,7 @@ def write_duckdb(db_path: Path, parquet: Mapping[str, Path | ParquetView]) -> li
                 # Re-pointing the macro does not re-bind the views built on it.
                 con.execute(
                     f"create or replace macro {name}_parquet(path := {_sql_text(source.final)}) "
-                    "as table select * from read_parquet(path)"
+                    f"as table select * from {source.reader()}"
                 )
     finally:
         con.close()
@@ -283,29 +352,44 @@ class StagedOutput:
         manifest: dict[str, Any],
         row_counts: Mapping[str, int],
         extra_files: Mapping[str, bytes] | None = None,
+        partitioned: bool = False,
     ) -> Path:
         """Write the remaining tables, the DuckDB file and the manifest, then swap folders.
 
         Parquet files already in the staging folder (streamed tables) are kept and put in
         DuckDB with the rest (:data:`PARQUET_VIEWS` as views over the files, the others as
-        copies).
+        copies). With ``partitioned`` the :data:`PARTITIONED_TABLES` become Hive-partitioned
+        folders (:func:`partition_parquet`).
         """
         for name, frame in tables.items():
             frame.write_parquet(self.staging / f"{name}.parquet", compression=TABLE_COMPRESSION)
         files = sorted(self.staging.glob("*.parquet"))
-        parquet: dict[str, Path | ParquetView] = {
-            p.stem: ParquetView(staged=p, final=self.out_dir / p.name)
-            if p.stem in PARQUET_VIEWS
-            else p
-            for p in files
-        }
+        parquet: dict[str, Path | ParquetView] = {}
+        for p in files:
+            if partitioned and p.stem in PARTITIONED_TABLES:
+                folder = self.staging / p.stem
+                partition_parquet(p, folder)
+                p.unlink()
+                parquet[p.stem] = ParquetView(
+                    staged=folder, final=self.out_dir / p.stem, partitioned=True
+                )
+            elif p.stem in PARQUET_VIEWS:
+                parquet[p.stem] = ParquetView(staged=p, final=self.out_dir / p.name)
+            else:
+                parquet[p.stem] = p
         views = write_duckdb(self.staging / "results.duckdb", parquet)
         for name, content in (extra_files or {}).items():
             (self.staging / name).write_bytes(content)
         manifest = dict(manifest)
         manifest["outputs"] = {
             name: {"file": f"{name}.parquet", "rows": int(row_counts[name])}
-            for name in sorted(parquet)
+            if not (isinstance(source, ParquetView) and source.partitioned)
+            else {
+                "folder": f"{name}/",
+                "partitioned_by": PARTITION_COLUMN,
+                "rows": int(row_counts[name]),
+            }
+            for name, source in sorted(parquet.items())
         }
         manifest["duckdb_views"] = views
         manifest["duckdb_parquet_views"] = sorted(n for n in parquet if n in PARQUET_VIEWS)

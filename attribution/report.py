@@ -375,6 +375,8 @@ def read_results(results_dir: Path) -> dict[str, pl.DataFrame | pl.LazyFrame]:
     if not folder.is_dir():
         msg = f"report: results folder {str(folder)!r} does not exist or is not a folder."
         raise ReadError(msg)
+    from attribution.outputs import scan_output_table
+
     if not (folder / "summary.parquet").exists():
         msg = (
             f"report: {str(folder / 'summary.parquet')!r} not found; expected the output "
@@ -384,10 +386,11 @@ def read_results(results_dir: Path) -> dict[str, pl.DataFrame | pl.LazyFrame]:
     tables: dict[str, pl.DataFrame | pl.LazyFrame] = {}
     for name in (*TABLE_FILES, *MONEY_TABLES):
         path = folder / f"{name}.parquet"
-        if not path.exists():
+        lazy = scan_output_table(folder, name)  # a file, or a --partitioned folder
+        if lazy is None:
             continue
         try:
-            tables[name] = pl.scan_parquet(path) if name == "effects" else pl.read_parquet(path)
+            tables[name] = lazy if name == "effects" else lazy.collect()
         except (OSError, pl.exceptions.ComputeError) as exc:
             msg = f"report: cannot read {str(path)!r} ({exc})."
             raise ReadError(msg) from exc

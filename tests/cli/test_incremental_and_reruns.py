@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import duckdb
 import polars as pl
 import pytest
 from click.testing import CliRunner
@@ -18,6 +19,7 @@ from polars.testing import assert_frame_equal
 from attribution.cli import main
 from attribution.incremental import load_previous, shared_fingerprint
 from attribution.options import RunOptions
+from attribution.outputs import PARTITIONED_TABLES, scan_output_table
 from attribution.runner import prepare, run_roster
 from attribution.simulate import demo_tables, simulate_roster, write_tables
 
@@ -162,3 +164,46 @@ def test_incremental_over_many_shards_equals_a_full_run(tmp_path: Path) -> None:
             incremental.tables()[name], frame, check_exact=False, rel_tol=0, abs_tol=ATOL
         )
     assert incremental.skipped == full.skipped
+
+
+def test_partitioned_output_holds_the_same_rows(demo, tmp_path: Path) -> None:
+    args = _inputs(tmp_path / "in", demo)
+    _run(args, tmp_path / "files")
+    manifest = _run(args, tmp_path / "parts", "--partitioned")
+    parts = tmp_path / "parts"
+    for name in PARTITIONED_TABLES:
+        assert not (parts / f"{name}.parquet").exists()
+        years = sorted(p.name for p in (parts / name).iterdir())
+        assert years == [f"period_year={y}" for y in range(2015, 2025)]
+        assert manifest["outputs"][name]["partitioned_by"] == "period_year"
+        # Each partition holds exactly its year's rows.
+        one = pl.read_parquet(parts / name / "period_year=2019")
+        assert set(one["period_end"].dt.year().to_list()) == {2019}
+        got = scan_output_table(parts, name)
+        assert got is not None
+        assert_frame_equal(
+            got.collect(), pl.read_parquet(tmp_path / "files" / f"{name}.parquet"), check_exact=True
+        )
+    con = duckdb.connect(str(parts / "results.duckdb"), read_only=True)
+    try:
+        n = con.execute("select count(*) from effects").fetchone()
+    finally:
+        con.close()
+    assert n is not None
+    assert n[0] == manifest["outputs"]["effects"]["rows"]
+    # An incremental run over a partitioned previous run equals a full run.
+    changed = dict(demo, holdings=_changed_holdings(demo["holdings"], "korvane_balanced"))
+    day2 = _inputs(tmp_path / "day2", changed)
+    again = _run(day2, parts, "--partitioned", "--incremental")
+    assert again["incremental"]["evaluated"] == 1
+    _run(day2, tmp_path / "full2")
+    for name in TABLES:
+        got = scan_output_table(parts, name)
+        assert got is not None
+        assert_frame_equal(
+            got.collect(),
+            pl.read_parquet(tmp_path / "full2" / f"{name}.parquet"),
+            check_exact=False,
+            rel_tol=0,
+            abs_tol=ATOL,
+        )
