@@ -872,7 +872,10 @@ def _verdicts(
     needed = periods_needed_hit_rate(
         float(options.reference_hit_rate), power=float(options.reference_power), alpha=level
     )
-    base = pl.DataFrame({"portfolio_id": ids, "_decisions": decisions})
+    base = pl.DataFrame(
+        {"portfolio_id": ids, "_decisions": decisions},
+        schema={"portfolio_id": pl.String, "_decisions": pl.Int64},
+    )
     hold = _direction(tests, PRIMARY_TESTS, level).rename({"skill": "h_s", "adverse": "h_a"})
     ret = _direction(tests, RETURNS_TIMING_TESTS, level).rename({"skill": "r_s", "adverse": "r_a"})
     frame = base.join(hold, on="portfolio_id", how="left").join(ret, on="portfolio_id", how="left")
@@ -908,7 +911,7 @@ def combine_timing(parts: list[TimingResult], options: TimingOptions) -> TimingR
     ids = tests.get_column("portfolio_id").unique(maintain_order=True).to_list()
     merton = tests.filter(pl.col("test") == "merton_accuracy")
     decisions = (
-        pl.DataFrame({"portfolio_id": ids})
+        pl.DataFrame({"portfolio_id": ids}, schema={"portfolio_id": pl.String})
         .join(merton.select("portfolio_id", "n_obs"), on="portfolio_id", how="left")
         .get_column("n_obs")
         .fill_null(0)

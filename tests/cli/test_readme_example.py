@@ -41,11 +41,12 @@ def test_readme_api_example_runs_and_matches_the_command_line(tmp_path: Path) ->
         "riskfree",
         "segment_returns",
         "portfolio_returns",
+        "portfolio_values",
     ):
         args += ["--" + table.replace("_", "-"), str(demo / f"{table}.parquet")]
     outcome = CliRunner().invoke(main, args)
     assert outcome.exit_code == 0, outcome.output
-    for table in ("summary", "effects", "series", "timing_tests", "data_issues"):
+    for table in ("summary", "effects", "series", "timing_tests", "data_issues", "money", "plan"):
         api = pl.read_parquet(tmp_path / "api" / f"{table}.parquet")
         cli = pl.read_parquet(tmp_path / "cli" / f"{table}.parquet")
         assert_frame_equal(api, cli, check_exact=True)
