@@ -55,11 +55,11 @@ def build_manifest(
         "notes": list(result.notes),
         "finished_at": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
         "incremental": {"mode": "full", **result.reuse},
-        "fingerprints": {
+        "fingerprints": None
+        if result.fingerprints is None
+        else {
             "shared": result.shared_fingerprint,
-            "portfolios": {}
-            if result.fingerprints is None
-            else dict(result.fingerprints.sort("portfolio_id").iter_rows()),
+            "portfolios": dict(result.fingerprints.sort("portfolio_id").iter_rows()),
         },
         "timings_seconds": dict(result.timings),
     }

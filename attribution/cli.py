@@ -152,12 +152,15 @@ def execute_run(
     progress: Callable[[int, int], None] | None = None,
     incremental: bool = False,
     partitioned: bool = False,
+    record_fingerprints: bool = False,
 ) -> RunResult:
     """Run the roster and write its outputs atomically under the folder's lock.
 
     ``incremental=True`` re-evaluates only the portfolios whose inputs changed since the
     run recorded in ``out_dir`` (:mod:`attribution.incremental`); the rest are copied.
     ``partitioned=True`` writes effects and series as Hive-partitioned folders.
+    ``record_fingerprints=True`` (implied by ``incremental``) records the portfolios' input
+    fingerprints in the manifest for the next incremental run.
 
     ``write_report=False`` leaves report.html out (``tiltaudit report`` can build it later
     from the stored tables). ``progress(done, total)`` is handed to the runner (portfolios
@@ -179,7 +182,12 @@ def execute_run(
             previous, reason = load_previous(out_dir, shared)
         effects = ParquetAppender(staged.path("effects.parquet"))
         result = run_roster(
-            prepared, options, effects_sink=effects, progress=progress, previous=previous
+            prepared,
+            options,
+            effects_sink=effects,
+            progress=progress,
+            previous=previous,
+            fingerprints=record_fingerprints,
         )
         result = with_incremental_note(result, incremental=incremental, reason=reason)
         effects.close(empty_schema=dict.fromkeys(EFFECTS_ORDER, pl.Float64()))
@@ -275,6 +283,7 @@ def run(
             progress=reporter.progress,
             incremental=incremental,
             partitioned=partitioned,
+            record_fingerprints=incremental or full,
         )
         reporter.finished(result, out)
     sys.exit(result.exit_code)

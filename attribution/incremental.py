@@ -4,13 +4,17 @@ Every run records fingerprints in its manifest:
 
 * one per portfolio — a 64-bit digest of the portfolio's rows in holdings, policy,
   segment_returns and portfolio_returns (per table: the row count and the wrapping sum of
-  each row's 64-bit hash, so row order does not matter; then the tables' figures hashed
-  together). Any change to any of its rows changes it, save with probability about 2⁻⁶⁴;
+  each row's 64-bit hash — the XOR of its columns' hashes, each column with its own seed —
+  so row order does not matter; then the tables' figures hashed together). A change to any
+  of its rows changes it, save with a chance of the order of 2⁻⁶⁴;
 * one shared — a SHA-256 of everything that affects every portfolio: index_returns, the
   riskless series, the run's options, the tool's version and the polars version (whose row
   hash is only stable within one version).
 
-With ``--incremental`` a run reads the previous manifest in the output folder. When the
+Fingerprints cost a pass of hashing over the inputs (about 0.1–0.2 s per 1,000 portfolios
+of 12 classes × 240 months), so they are computed only by runs given ``--incremental`` or
+``--full``: the nightly job's runs. With ``--incremental`` a run reads the previous manifest
+in the output folder. When the
 shared fingerprint is unchanged, a portfolio whose fingerprint is unchanged is not evaluated
 again: its rows are copied from the previous tables. Everything else is evaluated, and what
 spans the roster is always recomputed over the whole roster: q-values, verdicts, π0, the
@@ -58,9 +62,12 @@ def portfolio_fingerprints(
             )
         else:
             values = [c for c in frame.columns if c != PID]
+            # Column hashes combined by XOR cost half as much as hashing a struct of the row.
+            row = pl.col(values[0]).hash(_SEED)
+            for j, name_j in enumerate(values[1:], start=1):
+                row = row ^ pl.col(name_j).hash(_SEED + j)
             per = frame.group_by(PID).agg(
-                pl.len().cast(pl.UInt64).alias(n_col),
-                pl.struct(values).hash(_SEED).sum().alias(h_col),
+                pl.len().cast(pl.UInt64).alias(n_col), row.sum().alias(h_col)
             )
             out = out.join(per, on=PID, how="left").with_columns(
                 pl.col(n_col).fill_null(0), pl.col(h_col).fill_null(0)

@@ -256,6 +256,7 @@ def run_roster(
     effects_sink: Callable[[Callable[[], pa.Table]], None] | None = None,
     progress: Callable[[int, int], None] | None = None,
     previous: PreviousRun | None = None,
+    fingerprints: bool = False,
 ) -> RunResult:
     """Run the decomposition, linking and summaries for every portfolio that can run.
 
@@ -266,7 +267,8 @@ def run_roster(
     every shard, with portfolios counted. With ``previous`` (an incremental run, see
     :mod:`attribution.incremental`) portfolios whose fingerprint is unchanged are copied from
     the previous run's tables instead of being evaluated; roster-level figures are always
-    recomputed.
+    recomputed. ``fingerprints`` records each portfolio's input fingerprint (implied by
+    ``previous``) for the next incremental run.
     """
     timings: dict[str, float] = {"read_and_validate": 0.0, "decompose": 0.0, "summarise": 0.0}
     clock = time.perf_counter()
@@ -301,9 +303,11 @@ def run_roster(
             else None
             for name in PORTFOLIO_TABLES
         }
-        fingerprints = portfolio_fingerprints(tables, shard)
-        fingerprint_parts.append(fingerprints)
-        kept = previous.unchanged(fingerprints) if previous is not None else []
+        kept = []
+        if fingerprints or previous is not None:
+            found_prints = portfolio_fingerprints(tables, shard)
+            fingerprint_parts.append(found_prints)
+            kept = previous.unchanged(found_prints) if previous is not None else []
         if kept:
             tables = {
                 name: None if frame is None else frame.filter(~pl.col(PID).is_in(kept))
@@ -393,7 +397,9 @@ def run_roster(
         fingerprints=pl.concat(fingerprint_parts) if fingerprint_parts else None,
         shared_fingerprint=shared_fingerprint(
             shared.index_returns, shared.riskless, options.to_dict()
-        ),
+        )
+        if fingerprint_parts
+        else None,
         reuse={"reused": n_reused, "evaluated": len(ids) - n_reused},
         effects=effects,
         summary=summary,

@@ -84,15 +84,16 @@ def demo() -> dict[str, pl.DataFrame]:
 
 def test_rerun_with_the_same_inputs_gives_identical_tables(demo, tmp_path: Path) -> None:
     args = _inputs(tmp_path / "in", demo)
-    first = _run(args, tmp_path / "a")
-    second = _run(args, tmp_path / "b")
+    first = _run(args, tmp_path / "a", "--full")
+    second = _run(args, tmp_path / "b", "--full")
     _assert_same_tables(tmp_path / "a", tmp_path / "b", exact=True)
     assert first["fingerprints"] == second["fingerprints"]
+    assert len(first["fingerprints"]["portfolios"]) == 8
 
 
 def test_incremental_run_re_evaluates_only_the_changed_portfolio(demo, tmp_path: Path) -> None:
     out = tmp_path / "nightly"
-    _run(_inputs(tmp_path / "day1", demo), out)
+    _run(_inputs(tmp_path / "day1", demo), out, "--incremental")  # the first night: full
     day1 = pl.read_parquet(out / "summary.parquet")
     changed = dict(demo, holdings=_changed_holdings(demo["holdings"], "pentaloom_global"))
     day2 = _inputs(tmp_path / "day2", changed)
@@ -114,7 +115,7 @@ def test_incremental_run_re_evaluates_only_the_changed_portfolio(demo, tmp_path:
 
 def test_a_shared_table_change_re_evaluates_everyone(demo, tmp_path: Path) -> None:
     out = tmp_path / "nightly"
-    _run(_inputs(tmp_path / "day1", demo), out)
+    _run(_inputs(tmp_path / "day1", demo), out, "--incremental")
     bumped = demo["index_returns"].with_columns(
         pl.when(pl.int_range(pl.len()) == 5)
         .then(pl.col("return") + 1e-4)
@@ -132,7 +133,11 @@ def test_a_shared_table_change_re_evaluates_everyone(demo, tmp_path: Path) -> No
 def test_full_wins_over_incremental(demo, tmp_path: Path) -> None:
     args = _inputs(tmp_path / "in", demo)
     out = tmp_path / "nightly"
-    _run(args, out)
+    plain = _run(args, out)
+    assert plain["fingerprints"] is None  # a plain run does not pay for fingerprints
+    after_plain = _run(args, out, "--incremental")
+    assert after_plain["incremental"]["evaluated"] == 8
+    assert any("no usable fingerprints" in note for note in after_plain["notes"])
     manifest = _run(args, out, "--incremental", "--full")
     assert manifest["incremental"] == {"mode": "full", "evaluated": 8, "reused": 0}
     unchanged = _run(args, out, "--incremental")
@@ -144,7 +149,7 @@ def test_incremental_over_many_shards_equals_a_full_run(tmp_path: Path) -> None:
     # A random roster in shards of 7 portfolios: copied and new rows interleave in shards.
     tables = simulate_roster(n_portfolios=40, n_classes=5, n_periods=60, seed=11)
     options = RunOptions.build(tests="exact")
-    first = run_roster(prepare(tables, options), options, shard_size=7)
+    first = run_roster(prepare(tables, options), options, shard_size=7, fingerprints=True)
     first.with_sources(tables).write(tmp_path / "out")
     ids = sorted(tables["holdings"]["portfolio_id"].unique().to_list())
     changed = dict(tables)
@@ -169,7 +174,7 @@ def test_incremental_over_many_shards_equals_a_full_run(tmp_path: Path) -> None:
 def test_partitioned_output_holds_the_same_rows(demo, tmp_path: Path) -> None:
     args = _inputs(tmp_path / "in", demo)
     _run(args, tmp_path / "files")
-    manifest = _run(args, tmp_path / "parts", "--partitioned")
+    manifest = _run(args, tmp_path / "parts", "--partitioned", "--full")
     parts = tmp_path / "parts"
     for name in PARTITIONED_TABLES:
         assert not (parts / f"{name}.parquet").exists()
