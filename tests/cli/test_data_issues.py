@@ -223,6 +223,24 @@ def leveraged_ruin(frames: Frames) -> Frames:
     return out
 
 
+def with_values(extra: list[tuple[str, dt.date, float | None]], *, skip_bad_first: bool = False):
+    """A portfolio_values table (every portfolio valued at 1e6 from the first start) plus
+    ``extra`` rows; with ``skip_bad_first`` the damaged portfolio's first value is left out."""
+
+    def mutate(frames: Frames) -> Frames:
+        rows = [
+            (pid, FIRST_START, 1e6) for pid in PORTFOLIOS if not (skip_bad_first and pid == BAD)
+        ]
+        values = pl.DataFrame(
+            rows + extra,
+            schema={"portfolio_id": pl.String, "as_of": pl.Date, "value": pl.Float64},
+            orient="row",
+        )
+        return {**frames, "portfolio_values": values}
+
+    return mutate
+
+
 @dataclass(frozen=True)
 class IssueCase:
     """One minimal bad input and what the data_issues row must say about it."""
@@ -242,6 +260,27 @@ class IssueCase:
 
 
 CASES = (
+    IssueCase(
+        "value_invalid",
+        "portfolio_values",
+        with_values([(BAD, dt.date(2020, 2, 29), -5.0)]),
+        ("portfolio_values", BAD, "-5.0", "2020-02-29", "positive"),
+        dt.date(2020, 2, 29),
+    ),
+    IssueCase(
+        "value_duplicate",
+        "portfolio_values",
+        with_values([(BAD, dt.date(2020, 2, 29), 2e6), (BAD, dt.date(2020, 2, 29), 3e6)]),
+        ("portfolio_values", BAD, "2020-02-29", "more than one"),
+        dt.date(2020, 2, 29),
+    ),
+    IssueCase(
+        "value_missing",
+        "portfolio_values",
+        with_values([(BAD, dt.date(2020, 2, 29), 2e6)], skip_bad_first=True),
+        ("portfolio_values", BAD, "2 period(s)", "2020-01-31"),
+        dt.date(2020, 1, 31),
+    ),
     IssueCase(
         "period_return_below_minus_100",
         "holdings",

@@ -35,6 +35,7 @@ TABLE_FLAGS = {
     "riskfree": "--riskfree",
     "segment_returns": "--segment-returns",
     "portfolio_returns": "--portfolio-returns",
+    "portfolio_values": "--portfolio-values",
 }
 
 
