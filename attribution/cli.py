@@ -142,6 +142,10 @@ def _console(quiet: bool = False) -> Console:
     return make_console(quiet=quiet)
 
 
+#: The tables a run streams to Parquet shard by shard instead of holding them.
+STREAMED = ("effects", "series")
+
+
 def execute_run(
     sources: dict[str, Any],
     options: RunOptions,
@@ -167,7 +171,7 @@ def execute_run(
     counted; see :func:`attribution.runner.run_roster`).
     """
     from attribution.api import build_manifest, file_hashes
-    from attribution.decompose import EFFECTS_ORDER
+    from attribution.decompose import EFFECTS_ORDER, SERIES_ORDER
     from attribution.incremental import load_previous, shared_fingerprint, with_incremental_note
     from attribution.outputs import ParquetAppender, StagedOutput, output_lock
     from attribution.report import build_report
@@ -180,30 +184,35 @@ def execute_run(
                 prepared.shared.index_returns, prepared.shared.riskless, options.to_dict()
             )
             previous, reason = load_previous(out_dir, shared)
+        # The two roster × record tables go to Parquet shard by shard (memory stays bounded).
         effects = ParquetAppender(staged.path("effects.parquet"))
-        result = run_roster(
-            prepared,
-            options,
-            effects_sink=effects,
-            progress=progress,
-            previous=previous,
-            fingerprints=record_fingerprints,
-        )
+        series = ParquetAppender(staged.path("series.parquet"))
+        try:
+            result = run_roster(
+                prepared,
+                options,
+                effects_sink=effects,
+                series_sink=series,
+                progress=progress,
+                previous=previous,
+                fingerprints=record_fingerprints,
+            )
+        finally:
+            effects.close(empty_schema=dict.fromkeys(EFFECTS_ORDER, pl.Float64()))
+            series.close(empty_schema=dict.fromkeys(SERIES_ORDER, pl.Float64()))
         result = with_incremental_note(result, incremental=incremental, reason=reason)
-        effects.close(empty_schema=dict.fromkeys(EFFECTS_ORDER, pl.Float64()))
         tables = result.tables()
         counts = {name: frame.height for name, frame in tables.items()}
         counts["effects"] = effects.rows
+        counts["series"] = series.rows
         manifest = build_manifest(result, sources, hashes=file_hashes(sources))
         timings = manifest["timings_seconds"]
         clock = time.perf_counter()
         timings["write_started"] = clock - started
         extra_files = {}
         if write_report:
-            report = build_report(
-                {**tables, "effects": pl.scan_parquet(staged.path("effects.parquet"))},
-                manifest=manifest,
-            )
+            streamed = {name: pl.scan_parquet(staged.path(f"{name}.parquet")) for name in STREAMED}
+            report = build_report({**tables, **streamed}, manifest=manifest)
             extra_files["report.html"] = report.encode("utf-8")
         staged.commit(
             tables,

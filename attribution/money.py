@@ -45,6 +45,8 @@ PID = "portfolio_id"
 MONEY_FIGURES = ("active_return", *LINKED_EFFECTS)
 MONEY_COLUMNS = tuple(f"{name.removesuffix('_return')}_money" for name in MONEY_FIGURES)
 PLAN_RETURNS = ("portfolio_return", "policy_return", "active_return")
+#: The columns of ``series`` the money tables read.
+MONEY_INPUT_COLUMNS = (PID, "period_end", "period_start", *PLAN_RETURNS, *LINKED_EFFECTS)
 
 
 @dataclass(frozen=True)

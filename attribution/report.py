@@ -390,7 +390,8 @@ def read_results(results_dir: Path) -> dict[str, pl.DataFrame | pl.LazyFrame]:
         if lazy is None:
             continue
         try:
-            tables[name] = lazy if name == "effects" else lazy.collect()
+            # The two roster × record tables stay lazy: the report reads a few portfolios.
+            tables[name] = lazy if name in ("effects", "series") else lazy.collect()
         except (OSError, pl.exceptions.ComputeError) as exc:
             msg = f"report: cannot read {str(path)!r} ({exc})."
             raise ReadError(msg) from exc

@@ -26,7 +26,7 @@ from attribution.decompose import EFFECTS_ORDER, SERIES_ORDER, run_shard
 from attribution.errors import EXIT_OK, EXIT_SKIPPED, OptionError, ReadError
 from attribution.incremental import PreviousRun, portfolio_fingerprints, shared_fingerprint
 from attribution.load import TableReader, TableSource
-from attribution.money import money_tables
+from attribution.money import MONEY_INPUT_COLUMNS, money_tables
 from attribution.options import RunOptions
 from attribution.summary import summary_frame, windows_frame
 from attribution.timing import TimingOptions, TimingResult, combine_timing, evaluate_timing
@@ -66,14 +66,14 @@ class SharedInputs:
 class RunResult:
     """Everything one run produces, as polars frames, plus its bookkeeping.
 
-    ``effects`` is None when the run streamed it to a file (``effects_file``) instead of
-    holding the roster's largest table in memory.
+    ``effects`` and ``series`` are None when the run streamed them to files instead of
+    holding the roster's two largest tables in memory.
     """
 
     effects: pl.DataFrame | None
     summary: pl.DataFrame
     summary_windows: pl.DataFrame
-    series: pl.DataFrame
+    series: pl.DataFrame | None
     data_issues: pl.DataFrame
     calendar: Calendar
     options: RunOptions
@@ -131,14 +131,10 @@ class RunResult:
     def tables(self) -> dict[str, pl.DataFrame]:
         """The output tables held in memory, by their contract names (DESIGN §5)."""
         out = {} if self.effects is None else {"effects": self.effects}
-        out.update(
-            {
-                "summary": self.summary,
-                "summary_windows": self.summary_windows,
-                "series": self.series,
-                "data_issues": self.data_issues,
-            }
-        )
+        out.update({"summary": self.summary, "summary_windows": self.summary_windows})
+        if self.series is not None:
+            out["series"] = self.series
+        out["data_issues"] = self.data_issues
         out.update(self.extra_tables)
         return out
 
@@ -257,6 +253,7 @@ def run_roster(
     progress: Callable[[int, int], None] | None = None,
     previous: PreviousRun | None = None,
     fingerprints: bool = False,
+    series_sink: Callable[[pl.DataFrame], None] | None = None,
 ) -> RunResult:
     """Run the decomposition, linking and summaries for every portfolio that can run.
 
@@ -268,7 +265,9 @@ def run_roster(
     :mod:`attribution.incremental`) portfolios whose fingerprint is unchanged are copied from
     the previous run's tables instead of being evaluated; roster-level figures are always
     recomputed. ``fingerprints`` records each portfolio's input fingerprint (implied by
-    ``previous``) for the next incremental run.
+    ``previous``) for the next incremental run. With ``series_sink`` each shard's finished
+    ``series`` rows (timing columns included) are handed over and not kept, like the effects:
+    the two tables that grow with roster × record then never sit in memory whole.
     """
     timings: dict[str, float] = {"read_and_validate": 0.0, "decompose": 0.0, "summarise": 0.0}
     clock = time.perf_counter()
@@ -293,6 +292,7 @@ def run_roster(
     if progress is not None:
         progress(0, len(ids))
     fingerprint_parts: list[pl.DataFrame] = []
+    money_parts: list[pl.DataFrame] = []
     n_reused = 0
     for start in range(0, len(ids), shard_size):
         shard = ids[start : start + shard_size]
@@ -329,7 +329,7 @@ def run_roster(
                 windows_frame(part.periods, linking=options.linking, periods_per_year=ppy)
             )
             timings["summarise"] += time.perf_counter() - clock
-            series_parts.append(part.series)
+            shard_series = part.series
             issues.append(part.issues)
             skipped.extend(part.skipped)
             shard_effects = None if effects_sink is not None else part.effects
@@ -337,14 +337,13 @@ def run_roster(
                 effects_sink(part.effects_table)
             else:
                 effects_parts.append(part.effects)
+            shard_timing = None
             if prepared.timing is not None:
                 clock = time.perf_counter()
-                timing_parts.append(
-                    _timing_of(
-                        part.effects if shard_effects is None else shard_effects,
-                        part.series,
-                        prepared,
-                    )
+                shard_timing = _timing_of(
+                    part.effects if shard_effects is None else shard_effects,
+                    part.series,
+                    prepared,
                 )
                 timings["timing_tests"] = timings.get("timing_tests", 0.0) + (
                     time.perf_counter() - clock
@@ -355,15 +354,29 @@ def run_roster(
             timings["summarise"] += time.perf_counter() - clock
             summary_parts.append(merged["summary"])
             window_parts.append(merged["summary_windows"])
-            series_parts.append(merged["series"])
+            shard_series = merged["series"]
             issues.append(merged["data_issues"])
             skipped.extend(merged["skipped"])
             if effects_sink is not None:
                 effects_sink(merged["effects"])
             else:
                 effects_parts.append(merged["effects"])
-            if merged["timing"] is not None:
-                timing_parts.append(merged["timing"])
+            shard_timing = merged["timing"]
+        # The timing columns of series are per portfolio: join them shard by shard.
+        shard_series = shard_series.select(SERIES_ORDER)
+        if shard_timing is not None:
+            shard_series = shard_series.join(
+                shard_timing.series_extra, on=[PID, "period_end"], how="left"
+            )
+            timing_parts.append(
+                dataclasses.replace(shard_timing, series_extra=shard_timing.series_extra.clear())
+            )
+        if prepared.values is not None:
+            money_parts.append(shard_series.select(MONEY_INPUT_COLUMNS))
+        if series_sink is not None:
+            series_sink(shard_series)
+        else:
+            series_parts.append(shard_series)
         if progress is not None:
             progress(min(start + shard_size, len(ids)), len(ids))
     effects = (
@@ -374,13 +387,12 @@ def run_roster(
         else pl.DataFrame(schema={c: pl.Float64 for c in EFFECTS_ORDER})
     )
     summary = pl.concat(summary_parts)
-    series = pl.concat(series_parts).select(SERIES_ORDER)
+    series = None if series_sink is not None else pl.concat(series_parts)
     extra: dict[str, pl.DataFrame] = {}
     notes = () if prepared.timing_note is None else (prepared.timing_note,)
     if prepared.timing is not None and timing_parts:
         found = combine_timing(timing_parts, prepared.timing)
         summary = summary.join(found.verdicts, on=PID, how="left")
-        series = series.join(found.series_extra, on=[PID, "period_end"], how="left")
         issues.append(found.issues)
         extra = {
             "timing_tests": found.timing_tests,
@@ -389,7 +401,7 @@ def run_roster(
         }
     if prepared.values is not None:
         clock = time.perf_counter()
-        money = money_tables(series, prepared.values, linking=options.linking)
+        money = money_tables(pl.concat(money_parts), prepared.values, linking=options.linking)
         extra.update(money.tables())
         issues.append(money.issues)
         timings["money"] = time.perf_counter() - clock
