@@ -158,14 +158,20 @@ def json_value(value: Any) -> Any:
     return value
 
 
-def json_line(event: str, **fields: Any) -> str:
-    """One event as one line of strict JSON: ``{"event": …, "timestamp": …, **fields}``."""
-    record = {"event": event, "timestamp": utc_timestamp(), **fields}
+def json_line(event: str, *, timestamp: str | None = None, **fields: Any) -> str:
+    """One event as one line of strict JSON: ``{"event": …, "timestamp": …, **fields}``
+    (timestamp: now, unless given)."""
+    stamp = utc_timestamp() if timestamp is None else timestamp
+    record = {"event": event, "timestamp": stamp, **fields}
     return json.dumps(json_value(record), allow_nan=False)
 
 
 def _issue_counts(issues: pl.DataFrame) -> pl.DataFrame:
-    return issues.group_by("portfolio_id").agg(pl.len().alias("n_issues"))
+    return (
+        issues.group_by("portfolio_id")
+        .agg(pl.len().alias("n_issues"))
+        .with_columns(pl.col("portfolio_id").cast(pl.String))
+    )
 
 
 def skipped_reasons(result: RunResult) -> pl.DataFrame:
@@ -177,10 +183,11 @@ def skipped_reasons(result: RunResult) -> pl.DataFrame:
         result.data_issues.filter(pl.col("severity") == "error")
         .group_by("portfolio_id", maintain_order=True)
         .agg(pl.col("message").first().alias("reason"))
+        .with_columns(pl.col("portfolio_id").cast(pl.String))
     )
-    return skipped.join(first, on="portfolio_id", how="left").with_columns(
-        pl.col("reason").fill_null("error")
-    )
+    return skipped.join(
+        first, on="portfolio_id", how="left", validate="1:1", maintain_order="left"
+    ).with_columns(pl.col("reason").fill_null("error"))
 
 
 def run_counts(result: RunResult) -> dict[str, int]:
@@ -213,9 +220,18 @@ def print_summary(
     Only the first ``max_rows`` portfolios (by id) are listed; the rest are counted in one
     line, with the evidence tally of the whole roster.
     """
-    summary = result.summary.join(
-        _issue_counts(result.data_issues), on="portfolio_id", how="left"
-    ).with_columns(pl.col("n_issues").fill_null(0))
+    # Join keys as strings: an empty frame (every portfolio skipped) may type its ids Null.
+    summary = (
+        result.summary.with_columns(pl.col("portfolio_id").cast(pl.String))
+        .join(
+            _issue_counts(result.data_issues),
+            on="portfolio_id",
+            how="left",
+            validate="1:1",
+            maintain_order="left",
+        )
+        .with_columns(pl.col("n_issues").fill_null(0))
+    )
     has_evidence = "timing_evidence" in summary.columns
     table = Table(title="tiltaudit — linked effects over each portfolio's record", box=None)
     columns = ["portfolio", "periods", "source", "active", "static", "timing", "selection"]
@@ -342,8 +358,9 @@ class RunReporter:
         """Write one ``event`` line per record (json format only), flushed once at the end."""
         if not self.json or not records:
             return
+        stamp = utc_timestamp()  # one batch, one moment
         stream = self.stdout
-        stream.write("".join(json_line(event, **record) + "\n" for record in records))
+        stream.write("".join(json_line(event, timestamp=stamp, **r) + "\n" for r in records))
         stream.flush()
 
     # --- the run's life -------------------------------------------------------------------
@@ -401,7 +418,7 @@ class RunReporter:
             self._progress.stop()
             self._progress = None
             self._status = Status(
-                "writing the output tables and report", console=make_console(file=self.stderr)
+                "writing the output tables", console=make_console(file=self.stderr)
             )
             self._status.start()
 

@@ -288,6 +288,28 @@ def test_json_skipped_portfolio_exits_3(ws: Workspace) -> None:
     assert finished["issues_error"] >= 1
 
 
+@pytest.mark.parametrize("log_format", ["text", "json"])
+def test_every_portfolio_skipped(ws: Workspace, log_format: str) -> None:
+    """An empty summary (every portfolio skipped) still ends with the summary or the events.
+    --tests none keeps the check on the terminal layer alone."""
+    frames = dict(ws.frames)
+    frames["holdings"] = frames["holdings"].with_columns(weight=pl.col("weight") * 1.1)
+    flags = ("--tests", "none", "--log-format", log_format)
+    result = invoke(run_args(ws, ws.root / "out", *flags, frames=frames))
+    assert result.exit_code == 3, result.output + result.stderr
+    if log_format == "text":
+        for pid in PORTFOLIOS:
+            assert f"skipped {pid}: " in result.stdout
+        return
+    events = json_events(result.stdout)
+    assert "portfolio" not in [e["event"] for e in events]
+    skipped = [e["portfolio_id"] for e in events if e["event"] == "portfolio_skipped"]
+    assert skipped == list(PORTFOLIOS)
+    assert events[-1]["portfolios_run"] == 0
+    assert events[-1]["portfolios_skipped"] == len(PORTFOLIOS)
+    assert events[-1]["exit_code"] == 3
+
+
 def test_json_bad_input_exits_2_with_an_error_event(ws: Workspace) -> None:
     paths = ws.write()
     (ws.root / "broken.parquet").write_bytes(b"\x00garbage\x00" * 16)
@@ -434,18 +456,27 @@ def test_bar_is_drawn_on_a_terminal_only(monkeypatch: pytest.MonkeyPatch) -> Non
     assert dumb.getvalue() == ""
 
 
+def _fail_midway(reporter: RunReporter) -> None:
+    with reporter:
+        reporter.progress(0, 10)
+        raise ReadError("holdings: cannot read")
+
+
 def test_reporter_stops_the_bar_and_reports_an_error() -> None:
     terminal, stdout = FakeTerminal(), io.StringIO()
     reporter = RunReporter(command="run", stdout=stdout, stderr=terminal, interactive=True)
-    with pytest.raises(ReadError), reporter:
-        reporter.progress(0, 10)
-        raise ReadError("holdings: cannot read")
-    assert reporter._progress is None  # stopped, so the cursor is shown again
+    with pytest.raises(ReadError):
+        _fail_midway(reporter)
+    drawn = terminal.getvalue()
+    assert "0/10" in drawn  # the bar had been drawn
+    # ... and was stopped: the last cursor command shows the cursor again (DEC private mode
+    # 25, "\x1b[?25h" show / "\x1b[?25l" hide; xterm control sequences, from memory).
+    assert drawn.rfind("\x1b[?25h") > drawn.rfind("\x1b[?25l")
     assert stdout.getvalue() == ""  # text format: the message is the command line's stderr line
 
     stdout = io.StringIO()
-    with pytest.raises(ReadError), RunReporter(command="run", log_format="json", stdout=stdout):
-        raise ReadError("holdings: cannot read")
+    with pytest.raises(ReadError):
+        _fail_midway(RunReporter(command="run", log_format="json", stdout=stdout))
     (event,) = json_events(stdout.getvalue())
     assert event["event"] == "error"
     assert event["exit_code"] == ReadError.exit_code
