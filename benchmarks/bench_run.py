@@ -4,7 +4,8 @@ Not a test. For each roster size it makes (or reuses) a roster with `tiltaudit s
 (``--no-portfolio-returns``), then times, on the same files and in the same session:
 
 * ``floor`` — DuckDB (default threads) joining holdings to segment returns on portfolio,
-  class and period, summing weight × return per portfolio and period, writing Parquet;
+  class and period, summing weight × return per portfolio and period, writing Parquet (every
+  period, the first one starting at the month end before the first ``period_end``);
 * ``run_none`` — ``tiltaudit run --tests none --no-report``: validation, decomposition,
   linking and writing the tables;
 * ``run_exact`` — ``tiltaudit run --tests exact --no-report``: the same plus the closed-form
@@ -13,6 +14,9 @@ Not a test. For each roster size it makes (or reuses) a roster with `tiltaudit s
 * ``baseline`` (sizes up to ``--baseline-max``, default 5,000) — ``pandas_baseline.py``:
   pandas decomposition and Carino linking plus two statsmodels OLS regressions with
   Newey–West errors per portfolio, written to Parquet.
+
+tiltaudit runs as ``python -m attribution`` (the ``tiltaudit`` command without any shell
+shim in front). Each wall time includes the process's start-up and imports.
 
 Each command runs in its own process under ``/usr/bin/time -v``, so peak memory is the
 maximum resident set size of that process (GiB = 2**30 bytes). With ``--repeat k`` each
@@ -26,7 +30,8 @@ Targets (issue 5, stated at 5,000 portfolios; printed at every size for referenc
 Before timing, a sanity check runs the baseline and ``tiltaudit run --tests exact`` on a
 small roster (``--check-portfolios``, default 50; 0 skips it) and prints the largest
 differences between them (linked totals, per-row effects, regression γ, its standard error
-and α); they should agree to about 1e-12 since the definitions match.
+and α), and between the floor's Σ weight × return and tiltaudit's computed return per
+portfolio and period; they should agree to about 1e-12 since the definitions match.
 
 Rosters are cached in ``--roster-dir`` under a name made of their parameters, and reused when
 complete (simulating 50,000 portfolios takes minutes). Output folders are deleted after each
@@ -48,10 +53,10 @@ import subprocess
 import sys
 import tempfile
 import time
-from collections.abc import Callable
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
+import duckdb
 import pyarrow.parquet as pq
 
 HERE = Path(__file__).resolve().parent
@@ -71,7 +76,12 @@ CHECK_ATOL = 1e-9
 FLOOR_SQL = """
 copy (
     with calendar as (
-        select period_end, lag(period_end) over (order by period_end) as period_start
+        select
+            period_end,
+            coalesce(
+                lag(period_end) over (order by period_end),
+                last_day(period_end - interval 1 month)
+            ) as period_start
         from (select distinct period_end from read_parquet('{d}/index_returns.parquet'))
     ),
     held as (
@@ -132,14 +142,17 @@ def timed_once(cmd: list[str]) -> tuple[float, float, int]:
     return wall, int(rss.group(1)) / 2**20, proc.returncode
 
 
-def measure(cmd: list[str], *, repeat: int, before: Callable[[], None]) -> Measurement:
-    """Time ``cmd`` ``repeat`` times, calling ``before`` (untimed) ahead of each run."""
+def measure(cmd: list[str], *, repeat: int, out: Path, keep: bool) -> Measurement:
+    """Time ``cmd`` ``repeat`` times; its output ``out`` is deleted (untimed) before each run,
+    so every run writes from scratch, and after the last one unless ``keep``."""
     walls, peaks, code = [], [], 0
     for _ in range(repeat):
-        before()
+        remove(out)
         wall, peak, code = timed_once(cmd)
         walls.append(round(wall, 2))
         peaks.append(round(peak, 3))
+    if not keep:
+        remove(out)
     return Measurement(
         wall_s=min(walls),
         peak_gib=max(peaks),
@@ -149,16 +162,12 @@ def measure(cmd: list[str], *, repeat: int, before: Callable[[], None]) -> Measu
     )
 
 
-def remover(path: Path) -> Callable[[], None]:
-    """A callable deleting ``path`` (file or folder) so each run writes from scratch."""
-
-    def remove() -> None:
-        if path.is_dir():
-            shutil.rmtree(path)
-        elif path.exists():
-            path.unlink()
-
-    return remove
+def remove(path: Path) -> None:
+    """Delete ``path``, a file or a folder, if it exists."""
+    if path.is_dir():
+        shutil.rmtree(path)
+    elif path.exists():
+        path.unlink()
 
 
 def ensure_roster(cache: Path, n: int, classes: int, periods: int, seed: int) -> Path:
@@ -175,7 +184,7 @@ def ensure_roster(cache: Path, n: int, classes: int, periods: int, seed: int) ->
         return folder
     partial = folder.with_name(folder.name + ".partial")
     for stale in (folder, partial):
-        remover(stale)()
+        remove(stale)
     print(f"simulating {n:,} portfolios into {folder} ...", flush=True)
     started = time.perf_counter()
     subprocess.run(
@@ -224,7 +233,7 @@ def sanity_check(cache: Path, work: Path, n: int, classes: int, periods: int, se
     roster = ensure_roster(cache, n, classes, periods, seed)
     run_out, base_out = work / "check_run", work / "check_baseline"
     for path in (run_out, base_out):
-        remover(path)()
+        remove(path)
     subprocess.run(run_command(roster, run_out, tests="exact", report=False), check=True)
     proc = subprocess.run(
         [
@@ -242,10 +251,11 @@ def sanity_check(cache: Path, work: Path, n: int, classes: int, periods: int, se
         text=True,
     )
     diffs = json.loads(proc.stdout.strip().splitlines()[-1])
+    diffs.update(floor_check(roster, run_out, work / "check_floor.parquet"))
     print(f"\nsanity check on {n} portfolios: baseline vs tiltaudit, largest |difference|")
     worst = 0.0
     for key, value in diffs.items():
-        if "compared" in key or key == "portfolios_engine":
+        if "compared" in key or key.endswith("_engine"):
             print(f"  {key:48s} {value:,.0f}")
         else:
             worst = max(worst, value)
@@ -253,6 +263,26 @@ def sanity_check(cache: Path, work: Path, n: int, classes: int, periods: int, se
     verdict = "agree" if worst <= CHECK_ATOL else "DISAGREE"
     print(f"  => {verdict} within {CHECK_ATOL:g} (largest {worst:.3e})", flush=True)
     return {"portfolios": n, "atol": CHECK_ATOL, "largest": worst, "differences": diffs}
+
+
+def floor_check(roster: Path, run_out: Path, floor_out: Path) -> dict[str, float]:
+    """Largest |difference| between the floor's Σ w·r and tiltaudit's ``series.computed_return``,
+    so the floor is known to do the same join over the same periods."""
+    duckdb.sql(FLOOR_SQL.format(d=roster, out=floor_out))
+    joined = duckdb.sql(
+        f"""
+        select count(*) as n, max(abs(f.computed_return - s.computed_return)) as diff
+        from read_parquet('{floor_out}') as f
+        inner join read_parquet('{run_out}/series.parquet') as s
+            using (portfolio_id, period_end)
+        """
+    ).fetchall()[0]
+    engine_rows = duckdb.sql(f"select count(*) from read_parquet('{run_out}/series.parquet')")
+    return {
+        "floor_rows_compared": float(joined[0]),
+        "series_rows_engine": float(engine_rows.fetchall()[0][0]),
+        "floor_computed_return": float(joined[1]),
+    }
 
 
 def ratios(row: dict[str, Measurement]) -> dict[str, float | bool | None]:
@@ -313,12 +343,14 @@ def bench_size(
 ) -> dict[str, Measurement]:
     """Every measurement for one roster, in a fixed order."""
     row: dict[str, Measurement] = {}
+    keep = args.keep_outputs
     floor_out = work / f"floor_{n}.parquet"
     floor_sql = FLOOR_SQL.format(d=roster, out=floor_out)
     row["floor"] = measure(
         [sys.executable, "-c", f"import duckdb; duckdb.sql({floor_sql!r})"],
         repeat=args.repeat,
-        before=remover(floor_out),
+        out=floor_out,
+        keep=keep,
     )
     runs = [("run_none", "none", False), ("run_exact", "exact", False)]
     if args.with_report:
@@ -326,15 +358,11 @@ def bench_size(
     for key, tests, report in runs:
         out = work / f"{key}_{n}"
         cmd = run_command(roster, out, tests=tests, report=report)
-        row[key] = measure(cmd, repeat=args.repeat, before=remover(out))
+        row[key] = measure(cmd, repeat=args.repeat, out=out, keep=keep)
     if n <= args.baseline_max:
         out = work / f"baseline_{n}"
         cmd = [sys.executable, str(BASELINE), "--roster", str(roster), "--out", str(out)]
-        row["baseline"] = measure(cmd, repeat=args.repeat, before=remover(out))
-    if not args.keep_outputs:
-        for key in row:
-            target = floor_out if key == "floor" else work / f"{key}_{n}"
-            remover(target)()
+        row["baseline"] = measure(cmd, repeat=args.repeat, out=out, keep=keep)
     return row
 
 
