@@ -15,7 +15,7 @@ import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import polars as pl
@@ -29,7 +29,11 @@ from attribution.load import TableReader, TableSource
 from attribution.money import MONEY_INPUT_COLUMNS, money_tables
 from attribution.options import RunOptions
 from attribution.summary import summary_frame, windows_frame
-from attribution.timing import TimingOptions, TimingResult, combine_timing, evaluate_timing
+
+if TYPE_CHECKING:
+    # The timing layer pulls in scipy.stats (about a second to import): a run without
+    # timing tests never imports it.
+    from attribution.timing import TimingOptions, TimingResult
 from attribution.validate import (
     check_index_returns,
     check_riskfree,
@@ -210,6 +214,8 @@ class Prepared:
 
 def timing_options(options: RunOptions) -> TimingOptions:
     """The timing layer's options, taken from the run's options (validated on creation)."""
+    from attribution.timing import TimingOptions
+
     return TimingOptions(
         market=options.market,
         exposure=options.exposure,
@@ -231,13 +237,16 @@ def prepare(sources: Mapping[str, TableSource | None], options: RunOptions) -> P
     """
     readers = open_readers(sources)
     shared = load_shared(readers, options)
-    timing = timing_options(options)  # bad timing options fail here too (exit 2)
     note = None
+    timing = None
     if options.tests == "none":
-        timing, note = None, "timing tests not run: --tests none"
-    elif shared.riskless is None:
-        timing = None
-        note = "timing tests not run: no riskless source (give --riskfree or --cash-class)"
+        # Not validated either: with --tests none the timing options are not used.
+        note = "timing tests not run: --tests none"
+    else:
+        timing = timing_options(options)  # bad timing options fail here (exit 2)
+        if shared.riskless is None:
+            timing = None
+            note = "timing tests not run: no riskless source (give --riskfree or --cash-class)"
     values = None
     if "portfolio_values" in readers:
         values = _aligned(readers["portfolio_values"].read_all(), "portfolio_values", options)
@@ -391,6 +400,8 @@ def run_roster(
     extra: dict[str, pl.DataFrame] = {}
     notes = () if prepared.timing_note is None else (prepared.timing_note,)
     if prepared.timing is not None and timing_parts:
+        from attribution.timing import combine_timing
+
         found = combine_timing(timing_parts, prepared.timing)
         summary = summary.join(found.verdicts, on=PID, how="left")
         issues.append(found.issues)
@@ -436,6 +447,8 @@ def _timing_of(effects: pl.DataFrame, series: pl.DataFrame, prepared: Prepared) 
     # record, undefined tests); numpy's warnings about NaN arithmetic there are expected,
     # and every such row is reported through its own issue code.
     with np.errstate(invalid="ignore", divide="ignore"):
+        from attribution.timing import evaluate_timing
+
         return evaluate_timing(
             effects, series, shared.index_returns, shared.riskless, options=prepared.timing
         )
@@ -525,6 +538,8 @@ def _merge_with_previous(
         if kept and (tests_old is None or power_old is None):
             msg = "incremental: the previous run has no timing tables to copy"
             raise ReadError(msg)
+        from attribution.timing import TimingResult
+
         merged["timing"] = TimingResult(
             timing_tests=_stable_by_portfolio(tests_old, *(p.timing_tests for p in pieces)),
             verdicts=pieces[0].verdicts if pieces else pl.DataFrame(),
