@@ -1642,7 +1642,7 @@ def _plan_sentence(total: pl.DataFrame) -> str:
         verb = "added" if float(amount) >= 0 else "cost"
         return (
             f'{label} {verb} <span data-money="{esc(name)}" data-value="{esc(exact(amount))}">'
-            f"{esc(fmt_amount(abs(float(amount))))}</span>"
+            f"{esc(fmt_whole_amount(abs(float(amount))))}</span>"
         )
 
     pieces = [
@@ -1656,10 +1656,10 @@ def _plan_sentence(total: pl.DataFrame) -> str:
     return (
         f"<p>Across the plan, from the period ending {esc(fmt_date(row['first_period']))} to "
         f"{esc(fmt_date(row['last_period']))} ({esc(row['n_periods'])} periods; "
-        f"{esc(fmt_amount(row['plan_value_first']))} at the start): "
+        f"{esc(fmt_whole_amount(row['plan_value_first']))} at the start): "
         + "; ".join(p for p in pieces if p)
         + f". In all the managers {'added' if _finite(active) and float(active) >= 0 else 'cost'} "
-        f"{esc(fmt_amount(abs(float(active))) if _finite(active) else DASH)} against the "
+        f"{esc(fmt_whole_amount(abs(float(active))) if _finite(active) else DASH)} against the "
         f"policy mixes; as returns, the plan's active return was "
         f"{esc(fmt_pct(row['active_return']))}, of which timing "
         f"{esc(fmt_pct(row['timing']))} (linked).</p>"
