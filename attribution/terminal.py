@@ -78,6 +78,19 @@ EVENTS = {
         "timing_evidence",
     ),
     "portfolio_skipped": ("portfolio_id", "reason"),
+    "plan_total": (
+        "first_period",
+        "last_period",
+        "n_periods",
+        "plan_value_first",
+        "active_return",
+        "timing",
+        "active_money",
+        "static_allocation_money",
+        "timing_money",
+        "selection_money",
+        "residual_money",
+    ),
     "caution": ("message",),
     "run_finished": (
         "exit_code",
@@ -207,6 +220,32 @@ def _pct(value: Any) -> str:
     return f"{100 * value:+.2f}%"
 
 
+def plan_line(result: RunResult) -> str | None:
+    """One line on the plan in money (``plan_total``), when portfolio values were given."""
+    total = result.extra_tables.get("plan_total")
+    if total is None or total.height != 1:
+        return None
+    row = total.row(0, named=True)
+    parts = []
+    for name, label in (
+        ("timing", "timing"),
+        ("static_allocation", "static allocation"),
+        ("selection", "selection"),
+        ("active", "all effects together"),
+    ):
+        amount = row.get(f"{name}_money")
+        if amount is not None and math.isfinite(amount):
+            verb = "added" if amount >= 0 else "cost"
+            parts.append(f"{label} {verb} {abs(amount):,.0f}")
+    if not parts:
+        return None
+    return (
+        f"The plan in money ({row['first_period']} to {row['last_period']}, value-weighted): "
+        + "; ".join(parts)
+        + "."
+    )
+
+
 def print_summary(
     result: RunResult,
     console: Console,
@@ -273,6 +312,9 @@ def print_summary(
     n_warn = run_counts(result)["issues_warning"]
     if n_warn:
         console.print(f"{n_warn} warning(s) in data_issues.")
+    plan = plan_line(result)
+    if plan:
+        console.print(plan)
     for note in result.notes:
         console.print(note)
     if out_dir is not None:
@@ -453,6 +495,11 @@ class RunReporter:
             return
         for note in result.notes:
             self.emit("note", message=note)
+        total = result.extra_tables.get("plan_total")
+        if total is not None and total.height == 1:
+            fields = [c for c in EVENTS["plan_total"] if c in total.columns]
+            row = total.select(fields).with_columns(pl.col(pl.Date).cast(pl.String))
+            self.emit_many("plan_total", row.to_dicts())
         self.emit_many("portfolio", portfolio_records(result.summary))
         self.emit_many("portfolio_skipped", skipped_reasons(result).to_dicts())
         self.emit("caution", message=CAUTIONS)

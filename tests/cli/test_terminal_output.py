@@ -534,3 +534,28 @@ def test_bar_on_a_real_pseudo_terminal(ws: Workspace, subprocess_env: dict[str, 
     assert_no_bar(text)
     for pid in PORTFOLIOS:
         assert pid in text
+
+
+def test_plan_in_money_line_and_event(ws: Workspace) -> None:
+    # Invented values for the tiny roster: 1e6 per portfolio from the first period's start.
+    first = ws.frames["holdings"]["as_of"].min()
+    values = pl.DataFrame(
+        {"portfolio_id": list(PORTFOLIOS), "as_of": [first] * len(PORTFOLIOS)},
+        schema={"portfolio_id": pl.String, "as_of": pl.Date},
+    ).with_columns(value=pl.lit(1e6))
+    paths = ws.write({**ws.frames, "portfolio_values": values})
+    out = ws.root / "out"
+    args = [a for a in ws.run_args(paths, out) if a != "--quiet"]
+    text = CliRunner().invoke(main, args, env={"NO_COLOR": "1"})
+    assert text.exit_code == 0, text.output
+    total = pl.read_parquet(out / "plan_total.parquet").row(0, named=True)
+    timing = total["timing_money"]
+    verb = "added" if timing >= 0 else "cost"
+    assert f"timing {verb} {abs(timing):,.0f}" in text.output
+    as_json = CliRunner().invoke(main, [*args, "--log-format", "json"])
+    assert as_json.exit_code == 0, as_json.output
+    events = [json.loads(line) for line in as_json.output.splitlines()]
+    plan = [e for e in events if e["event"] == "plan_total"]
+    assert len(plan) == 1
+    assert plan[0]["timing_money"] == timing
+    assert plan[0]["first_period"] == str(total["first_period"])
