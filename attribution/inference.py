@@ -15,8 +15,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import gammaln
-from scipy.stats import norm
+from scipy.special import gammaln, ndtr
 
 FloatArray = np.ndarray
 BoolArray = np.ndarray
@@ -121,9 +120,10 @@ def ols_newey_west(
 
 
 def normal_pvalues(statistic: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """One-sided p-values from the standard normal: (P(Z ≥ s), P(Z ≤ s)) via ``norm.sf``."""
+    """One-sided p-values from the standard normal: (P(Z ≥ s), P(Z ≤ s)) = (Φ(−s), Φ(s)),
+    with Φ = ``scipy.special.ndtr`` (what ``scipy.stats.norm.sf`` evaluates)."""
     s = np.asarray(statistic, dtype=float)
-    return norm.sf(s), norm.sf(-s)
+    return ndtr(-s), ndtr(s)
 
 
 def hypergeometric_tails(

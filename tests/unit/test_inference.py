@@ -372,3 +372,16 @@ def test_row_keys_group_identical_rows() -> None:
     keys = rs.row_keys(np.array([3, 3, 3]), a)
     assert keys[0] == keys[1]
     assert keys[0] != keys[2]
+
+
+@pytest.mark.parametrize(
+    ("n", "p"), [(1, 0.3), (60, 0.6), (240, 0.4), (480, 0.72), (30, 0.0), (30, 1.0)]
+)
+def test_binomial_pmf_matches_scipy(n: int, p: float) -> None:
+    # Reference: scipy.stats.binom.pmf (scipy's own binomial law).
+    from scipy.stats import binom
+
+    from attribution.power import binomial_pmf
+
+    k = np.arange(n + 1)
+    np.testing.assert_allclose(binomial_pmf(k, n, p), binom.pmf(k, n, p), rtol=1e-10, atol=1e-300)
