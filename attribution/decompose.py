@@ -562,6 +562,27 @@ def effects_table(panel: Panel, eff: Effects, calendar: Calendar) -> pa.Table:
     return pa.table(columns)
 
 
+#: The effects columns the timing layer reads.
+TIMING_EFFECTS_COLUMNS = (
+    PID,
+    "period_end",
+    "asset_class",
+    "weight",
+    "static_weight",
+    "policy_weight",
+    "segment_return",
+)
+
+
+def timing_effects(table: pa.Table) -> pl.DataFrame:
+    """The columns of an :func:`effects_table` that the timing layer reads, as polars, with
+    portfolio and class left dictionary-encoded (Categorical): a fraction of the cost of
+    :func:`effects_frame`, and the timing layer only turns them into integer codes."""
+    frame = pl.from_arrow(table.select(list(TIMING_EFFECTS_COLUMNS)))
+    assert isinstance(frame, pl.DataFrame)
+    return frame
+
+
 def effects_frame(table: pa.Table) -> pl.DataFrame:
     """An effects table from :func:`effects_table` as polars, text columns as plain text."""
     frame = pl.from_arrow(table)

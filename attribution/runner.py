@@ -22,7 +22,13 @@ import polars as pl
 import pyarrow as pa
 
 from attribution.calendar import Calendar, align_dates, build_calendar
-from attribution.decompose import EFFECTS_ORDER, SERIES_ORDER, run_shard
+from attribution.decompose import (
+    EFFECTS_ORDER,
+    SERIES_ORDER,
+    effects_frame,
+    run_shard,
+    timing_effects,
+)
 from attribution.errors import EXIT_OK, EXIT_SKIPPED, OptionError, ReadError
 from attribution.incremental import PreviousRun, portfolio_fingerprints, shared_fingerprint
 from attribution.load import TableReader, TableSource
@@ -42,6 +48,8 @@ from attribution.validate import (
 )
 
 PID = "portfolio_id"
+#: What an effects sink receives for a shard (see :func:`run_roster`).
+EffectsPart = pa.Table | pl.DataFrame | Callable[[], pa.Table]
 #: Portfolios per shard: ~1.7 GiB peak for 12 classes x 240 periods; bigger shards mostly
 #: add memory (page faults on fresh arrays), not speed.
 DEFAULT_SHARD_SIZE = 1000
@@ -258,7 +266,7 @@ def run_roster(
     options: RunOptions,
     *,
     shard_size: int = DEFAULT_SHARD_SIZE,
-    effects_sink: Callable[[Callable[[], pa.Table]], None] | None = None,
+    effects_sink: Callable[[EffectsPart], None] | None = None,
     progress: Callable[[int, int], None] | None = None,
     previous: PreviousRun | None = None,
     fingerprints: bool = False,
@@ -267,8 +275,10 @@ def run_roster(
     """Run the decomposition, linking and summaries for every portfolio that can run.
 
     Whole-input problems raise (exit 2); portfolio problems become ``data_issues`` rows.
-    With ``effects_sink`` each shard's effects table is handed over, as the function that
-    builds it (pyarrow; the sink may call it on its own thread), and not kept.
+    With ``effects_sink`` each shard's effects table is handed over and not kept: as the
+    function that builds it (pyarrow; the sink may call it on its own thread), as the built
+    Arrow table (when the timing tests needed it anyway), or as a polars frame (an
+    incremental run's merged rows).
     ``progress(done, total)`` is called once before the first shard (done = 0) and after
     every shard, with portfolios counted. With ``previous`` (an incremental run, see
     :mod:`attribution.incremental`) portfolios whose fingerprint is unchanged are copied from
@@ -341,19 +351,25 @@ def run_roster(
             shard_series = part.series
             issues.append(part.issues)
             skipped.extend(part.skipped)
-            shard_effects = None if effects_sink is not None else part.effects
-            if effects_sink is not None:
-                effects_sink(part.effects_table)
-            else:
-                effects_parts.append(part.effects)
             shard_timing = None
-            if prepared.timing is not None:
+            if prepared.timing is None:
+                # The sink builds the Arrow table on its writer thread.
+                if effects_sink is not None:
+                    effects_sink(part.effects_table)
+                else:
+                    effects_parts.append(part.effects)
+            else:
+                # Built once here: the timing layer reads a slim view of it, the sink or the
+                # in-memory frame the whole.
                 clock = time.perf_counter()
-                shard_timing = _timing_of(
-                    part.effects if shard_effects is None else shard_effects,
-                    part.series,
-                    prepared,
-                )
+                table = part.effects_table()
+                if effects_sink is not None:
+                    effects_sink(table)
+                else:
+                    effects_parts.append(effects_frame(table))
+                timings["decompose"] += time.perf_counter() - clock
+                clock = time.perf_counter()
+                shard_timing = _timing_of(timing_effects(table), part.series, prepared)
                 timings["timing_tests"] = timings.get("timing_tests", 0.0) + (
                     time.perf_counter() - clock
                 )

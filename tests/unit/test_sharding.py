@@ -31,8 +31,10 @@ def test_shards_and_sinks_equal_one_piece(roster, tests: str) -> None:
     effects_parts: list[pl.DataFrame] = []
     series_parts: list[pl.DataFrame] = []
 
-    def keep_effects(part) -> None:  # the sink gets a builder of an Arrow table
-        frame = pl.from_arrow(part())
+    def keep_effects(part) -> None:  # an Arrow table, a builder of one, or a polars frame
+        if callable(part):
+            part = part()
+        frame = part if isinstance(part, pl.DataFrame) else pl.from_arrow(part)
         assert isinstance(frame, pl.DataFrame)
         effects_parts.append(
             frame.with_columns(pl.col("portfolio_id", "asset_class").cast(pl.String))
@@ -53,3 +55,37 @@ def test_shards_and_sinks_equal_one_piece(roster, tests: str) -> None:
         got = streamed[name] if name in streamed else sharded.tables()[name]
         assert_frame_equal(got, frame, check_exact=False, rel_tol=0, abs_tol=ATOL)
     assert sharded.skipped == whole.skipped
+
+
+def test_timing_reads_the_slim_effects_view_like_the_full_frame(roster) -> None:
+    # The runner hands the timing layer a slim view with Categorical ids and classes; the
+    # results must equal those from the plain effects frame with text columns.
+    import numpy as np
+
+    from attribution.decompose import effects_frame, run_shard, timing_effects
+    from attribution.runner import PORTFOLIO_TABLES, timing_options
+    from attribution.timing import evaluate_timing
+
+    options = RunOptions.build(tests="exact")
+    prepared = prepare(roster, options)
+    ids = prepared.readers["holdings"].portfolio_ids().to_list()
+    tables = {
+        name: prepared.readers[name].read_shard(ids) if name in prepared.readers else None
+        for name in PORTFOLIO_TABLES
+    }
+    part = run_shard(tables, prepared.shared.calendar, prepared.shared.index_returns, options)
+    table = part.effects_table()
+    shared = prepared.shared
+    with np.errstate(invalid="ignore", divide="ignore"):
+        results = [
+            evaluate_timing(
+                frame,
+                part.series,
+                shared.index_returns,
+                shared.riskless,
+                options=timing_options(options),
+            )
+            for frame in (effects_frame(table), timing_effects(table))
+        ]
+    for name in ("timing_tests", "verdicts", "power", "series_extra", "issues"):
+        assert_frame_equal(getattr(results[1], name), getattr(results[0], name), check_exact=True)
