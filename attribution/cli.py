@@ -315,7 +315,9 @@ def validate(ctx: click.Context, **params: Any) -> None:
     sources, options = _split(params)
     # Inputs only: the timing tests (and their warnings) are left to the run.
     options = dataclasses.replace(options, tests="none")
-    result = run_roster(sources, options, effects_sink=lambda frame: None)
+    result = run_roster(
+        sources, options, effects_sink=lambda part: None, series_sink=lambda part: None
+    )
     console = _console()
     issues = result.data_issues
     if issues.height:
