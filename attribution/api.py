@@ -8,6 +8,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 from pathlib import Path
 from typing import Any
@@ -15,6 +16,7 @@ from typing import Any
 import polars as pl
 
 from attribution import __version__
+from attribution.errors import OptionError
 from attribution.load import TableSource
 from attribution.options import RunOptions
 from attribution.runner import RunResult, run_roster
@@ -24,7 +26,7 @@ def build_manifest(
     result: RunResult,
     sources: dict[str, Any],
     *,
-    engine: str = "local",
+    engine: str | None = None,
     hashes: dict[str, dict[str, str]] | None = None,
 ) -> dict[str, Any]:
     """The run's manifest: inputs (with SHA-256 for files), options, version, counts, timings."""
@@ -36,7 +38,8 @@ def build_manifest(
     return {
         "tool": "tiltaudit",
         "version": __version__,
-        "engine": engine,
+        "engine": engine or result.engine,
+        "engine_version": result.engine_version or engine_version(engine or result.engine),
         "inputs": inputs,
         "options": result.options.to_dict(),
         "calendar": {
@@ -63,6 +66,15 @@ def build_manifest(
         },
         "timings_seconds": dict(result.timings),
     }
+
+
+def engine_version(engine: str) -> str:
+    """What ran the kernels: ``polars <v>`` for the local engine, ``pyspark <v>`` on Spark."""
+    if engine == "spark":
+        from attribution.spark_engine import spark_version
+
+        return f"pyspark {spark_version()}"
+    return f"polars {pl.__version__}"
 
 
 def file_hashes(sources: dict[str, Any]) -> dict[str, dict[str, str]]:
@@ -103,11 +115,17 @@ def run(
     segment_returns: TableSource | None = None,
     portfolio_returns: TableSource | None = None,
     portfolio_values: TableSource | None = None,
+    engine: str = "local",
+    spark: Any = None,
     **options: Any,
 ) -> RunResult:
     """Run a roster in memory. Tables are paths (Parquet/CSV) or polars, pandas or Arrow
     tables; ``options`` are the command line's long options with underscores
     (``linking="menchero"``, ``static="trailing:12"``, ``tests="exact"``, …).
+
+    ``engine="spark"`` runs the same kernels on Spark's executors
+    (:func:`attribution.spark_engine.run_roster_spark`; ``spark`` is the session to use, else
+    the active one, else a local one).
 
     Returns the frozen :class:`~attribution.runner.RunResult`: every output table as a
     polars frame, ``.write(dir)`` and a notebook view. Bad input raises
@@ -122,5 +140,15 @@ def run(
         "portfolio_returns": portfolio_returns,
         "portfolio_values": portfolio_values,
     }
-    result = run_roster(sources, RunOptions.build(**options))
+    opts = RunOptions.build(**options)
+    if engine == "local":
+        result = run_roster(sources, opts)
+    elif engine == "spark":
+        from attribution.spark_engine import run_roster_spark
+
+        result = run_roster_spark(sources, opts, spark=spark)
+    else:
+        msg = f"The 'engine' option must be 'local' or 'spark'. Got {engine!r} instead."
+        raise OptionError(msg)
+    result = dataclasses.replace(result, engine=engine, engine_version=engine_version(engine))
     return result.with_sources(sources)

@@ -157,6 +157,7 @@ def execute_run(
     incremental: bool = False,
     partitioned: bool = False,
     record_fingerprints: bool = False,
+    engine: str = "local",
 ) -> RunResult:
     """Run the roster and write its outputs atomically under the folder's lock.
 
@@ -164,18 +165,25 @@ def execute_run(
     run recorded in ``out_dir`` (:mod:`attribution.incremental`); the rest are copied.
     ``partitioned=True`` writes effects and series as Hive-partitioned folders.
     ``record_fingerprints=True`` (implied by ``incremental``) records the portfolios' input
-    fingerprints in the manifest for the next incremental run.
+    fingerprints in the manifest for the next incremental run. ``engine="spark"`` runs the
+    kernels on Spark (:mod:`attribution.spark_engine`); incremental runs are local only.
 
     ``write_report=False`` leaves report.html out (``tiltaudit report`` can build it later
     from the stored tables). ``progress(done, total)`` is handed to the runner (portfolios
     counted; see :func:`attribution.runner.run_roster`).
     """
-    from attribution.api import build_manifest, file_hashes
+    from attribution.api import build_manifest, engine_version, file_hashes
     from attribution.decompose import EFFECTS_ORDER, SERIES_ORDER
     from attribution.incremental import load_previous, shared_fingerprint, with_incremental_note
     from attribution.outputs import ParquetAppender, StagedOutput, output_lock
     from attribution.report import build_report
 
+    if engine == "spark" and incremental:
+        msg = (
+            "The 'incremental' option needs --engine local; the spark engine evaluates every "
+            "portfolio (give --full, or leave --incremental out)."
+        )
+        raise OptionError(msg)
     prepared = prepare(sources, options)  # bad input fails here, before anything is written
     with output_lock(out_dir), StagedOutput(out_dir) as staged:
         previous, reason = None, ""
@@ -188,14 +196,29 @@ def execute_run(
         effects = ParquetAppender(staged.path("effects.parquet"))
         series = ParquetAppender(staged.path("series.parquet"))
         try:
-            result = run_roster(
-                prepared,
-                options,
-                effects_sink=effects,
-                series_sink=series,
-                progress=progress,
-                previous=previous,
-                fingerprints=record_fingerprints,
+            if engine == "spark":
+                from attribution.spark_engine import run_roster_spark
+
+                result = run_roster_spark(
+                    prepared,
+                    options,
+                    effects_sink=effects,
+                    series_sink=series,
+                    progress=progress,
+                    fingerprints=record_fingerprints,
+                )
+            else:
+                result = run_roster(
+                    prepared,
+                    options,
+                    effects_sink=effects,
+                    series_sink=series,
+                    progress=progress,
+                    previous=previous,
+                    fingerprints=record_fingerprints,
+                )
+            result = dataclasses.replace(
+                result, engine=engine, engine_version=engine_version(engine)
             )
         finally:
             effects.close(empty_schema=dict.fromkeys(EFFECTS_ORDER, pl.Float64()))
@@ -244,6 +267,13 @@ def main() -> None:
     "--full", is_flag=True, default=None, help="Evaluate every portfolio (wins over --incremental)."
 )
 @click.option(
+    "--engine",
+    type=click.Choice(["local", "spark"]),
+    default=None,
+    help="local (default): this machine, shard by shard; spark: the same kernels on Spark's "
+    "executors (pyspark >= 4, Java 17; the active session, else local[2]).",
+)
+@click.option(
     "--partitioned",
     is_flag=True,
     default=None,
@@ -282,6 +312,7 @@ def run(
         full = bool(params.pop("full", None))
         incremental = bool(params.pop("incremental", None)) and not full
         partitioned = bool(params.pop("partitioned", None))
+        engine = params.pop("engine", None) or "local"
         sources, options = _split(params)
         result = execute_run(
             sources,
@@ -293,6 +324,7 @@ def run(
             incremental=incremental,
             partitioned=partitioned,
             record_fingerprints=incremental or full,
+            engine=engine,
         )
         reporter.finished(result, out)
     sys.exit(result.exit_code)

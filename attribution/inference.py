@@ -78,6 +78,18 @@ def ols_newey_west(
     portfolio's real observations must be a left-aligned run so that lags pair neighbours.
     """
     mask = np.asarray(mask, dtype=bool)
+    width = mask.shape[1]
+    n_reg = np.shape(x)[-1]
+    if width < n_reg:
+        # Fewer padded observations than regressors (every record of the call that short):
+        # pad with empty rows so the factorisation stays square; such fits are rank
+        # deficient and come out NaN.
+        extra = n_reg - width
+        x = np.concatenate(
+            [np.asarray(x, dtype=float), np.zeros((mask.shape[0], extra, n_reg))], axis=1
+        )
+        y = np.concatenate([np.asarray(y, dtype=float), np.zeros((mask.shape[0], extra))], axis=1)
+        mask = np.concatenate([mask, np.zeros((mask.shape[0], extra), dtype=bool)], axis=1)
     xm = np.where(mask[..., None], x, 0.0)
     ym = np.where(mask, y, 0.0)
     n_obs = mask.sum(axis=1)
@@ -112,7 +124,7 @@ def ols_newey_west(
     return OlsFit(
         coef=coef + nan,
         std_error=se + nan,
-        residual=resid,
+        residual=resid[:, :width],
         n_obs=n_obs,
         lag=lag,
         xtx_inv=xtx_inv + nan[..., None],

@@ -94,6 +94,8 @@ class RunResult:
     extra_tables: dict[str, pl.DataFrame] = field(default_factory=dict)
     notes: tuple[str, ...] = ()
     sources: dict[str, Any] = field(default_factory=dict, repr=False)
+    engine: str = "local"
+    engine_version: str | None = None
     fingerprints: pl.DataFrame | None = field(default=None, repr=False)
     shared_fingerprint: str | None = None
     reuse: dict[str, Any] = field(default_factory=dict)

@@ -406,6 +406,11 @@ def _exposure_tests(
         _placebo_slope(trd, trade, xt, drift[..., None], n_t, block_t, options, _STREAM_TRADE)
     trd.n_obs = n_t
     _require(trd, "trade_regression", n_t, _spread(trade, mask_t), "the manager never traded")
+    # A manager who rebalances back to a fixed mix trades exactly what drift moved: trade =
+    # −drift, the control fits perfectly and the slope is a ratio of rounding residues.
+    offset = _spread(trade + drift, mask_t) <= NO_VARIATION
+    _mark(trd, (n_t >= MIN_OBS["trade_regression"]) & offset & drift_moves,
+          "the trades only undo drift (rebalancing back to a fixed mix)")  # fmt: skip
     out["trade_regression"] = trd
 
     # Signs: bullish when the exposure is above the static exposure, up when x > 0.

@@ -89,3 +89,39 @@ def test_timing_reads_the_slim_effects_view_like_the_full_frame(roster) -> None:
         ]
     for name in ("timing_tests", "verdicts", "power", "series_extra", "issues"):
         assert_frame_equal(getattr(results[1], name), getattr(results[0], name), check_exact=True)
+
+
+def test_one_portfolio_per_shard_equals_the_default_on_the_demo() -> None:
+    # The demo holds a fixed-mix rebalancer (orvelle_partners) whose trades exactly undo
+    # drift: its trade_regression must be undefined, not a ratio of rounding residues that
+    # changes with the shard's other portfolios.
+    from attribution.simulate import demo_tables
+
+    demo = demo_tables()
+    options = RunOptions.build(tests="all", draws=199)
+    alone = run_roster(prepare(demo, options), options, shard_size=1)
+    together = run_roster(prepare(demo, options), options)
+    for name, frame in together.tables().items():
+        assert_frame_equal(alone.tables()[name], frame, check_exact=False, rel_tol=0, abs_tol=ATOL)
+    trade = together.extra_tables["timing_tests"].filter(
+        (pl.col("portfolio_id") == "orvelle_partners") & (pl.col("test") == "trade_regression")
+    )
+    assert trade["p_value"].is_null().all()
+    issues = together.data_issues.filter(
+        (pl.col("portfolio_id") == "orvelle_partners") & (pl.col("code") == "test_undefined")
+    )
+    assert issues["message"].str.contains("undo drift").any()
+
+
+def test_a_shard_of_one_period_records_does_not_break_the_regressions() -> None:
+    # Every record in the shard is one period long: fewer observations than regressors.
+    tables = simulate_roster(n_portfolios=2, n_classes=4, n_periods=24, seed=2)
+    first = tables["holdings"]["as_of"].min()
+    tables = dict(tables, holdings=tables["holdings"].filter(pl.col("as_of") == first))
+    options = RunOptions.build(tests="exact")
+    result = run_roster(prepare(tables, options), options)
+    assert result.summary["n_periods"].to_list() == [1, 1]
+    tests = result.extra_tables["timing_tests"]
+    assert tests["p_value"].is_null().all()  # every test: too few periods
+    codes = set(result.data_issues["code"].to_list())
+    assert "test_too_few_periods" in codes
