@@ -82,7 +82,7 @@ ISSUE_CODES: dict[str, tuple[str, str]] = {
     "test_undefined": (
         "warning",
         "a timing test cannot be computed: nothing varies (constant weights, a market that "
-        "never changed sign, a singular design)",
+        "never changed sign, a singular design, trades that only undo drift)",
     ),
 }
 
