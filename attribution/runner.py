@@ -12,7 +12,8 @@ from __future__ import annotations
 
 import dataclasses
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -315,15 +316,8 @@ def run_roster(
     fingerprint_parts: list[pl.DataFrame] = []
     money_parts: list[pl.DataFrame] = []
     n_reused = 0
-    for start in range(0, len(ids), shard_size):
-        shard = ids[start : start + shard_size]
+    for start, shard, tables in _read_ahead(readers, ids, shard_size, options, timings):
         clock = time.perf_counter()
-        tables = {
-            name: _aligned(readers[name].read_shard(shard), name, options)
-            if name in readers
-            else None
-            for name in PORTFOLIO_TABLES
-        }
         kept = []
         if fingerprints or previous is not None:
             found_prints = portfolio_fingerprints(tables, shard)
@@ -454,6 +448,44 @@ def run_roster(
         extra_tables=extra,
         notes=notes,
     )
+
+
+def _read_ahead(
+    readers: Mapping[str, TableReader],
+    ids: list[str],
+    shard_size: int,
+    options: RunOptions,
+    timings: dict[str, float],
+) -> Iterator[tuple[int, list[str], dict[str, pl.DataFrame | None]]]:
+    """The shards in order, each with its portfolio tables, the next one read on a
+    background thread while the caller computes the current one.
+
+    Reading (Parquet decoding in polars' own threads) and the numpy kernels (one core) then
+    overlap; memory holds one shard of input more. The time spent waiting for a shard is
+    added to ``timings["read_and_validate"]``.
+    """
+
+    def read(start: int) -> dict[str, pl.DataFrame | None]:
+        shard = ids[start : start + shard_size]
+        return {
+            name: _aligned(readers[name].read_shard(shard), name, options)
+            if name in readers
+            else None
+            for name in PORTFOLIO_TABLES
+        }
+
+    starts = list(range(0, len(ids), shard_size))
+    if not starts:
+        return
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="shard-reader") as pool:
+        pending = pool.submit(read, starts[0])
+        for i, start in enumerate(starts):
+            clock = time.perf_counter()
+            tables = pending.result()
+            timings["read_and_validate"] += time.perf_counter() - clock
+            if i + 1 < len(starts):
+                pending = pool.submit(read, starts[i + 1])
+            yield start, ids[start : start + shard_size], tables
 
 
 def _timing_of(effects: pl.DataFrame, series: pl.DataFrame, prepared: Prepared) -> TimingResult:
