@@ -26,6 +26,7 @@ from attribution.calendar import Calendar, align_dates, build_calendar
 from attribution.decompose import (
     EFFECTS_ORDER,
     SERIES_ORDER,
+    ShardResult,
     effects_frame,
     run_shard,
     timing_effects,
@@ -490,6 +491,8 @@ def _read_ahead(
 
 def _timing_of(effects: pl.DataFrame, series: pl.DataFrame, prepared: Prepared) -> TimingResult:
     """The timing battery of one shard's evaluated portfolios."""
+    from attribution.timing import evaluate_timing
+
     shared = prepared.shared
     assert shared.riskless is not None
     assert prepared.timing is not None
@@ -497,8 +500,6 @@ def _timing_of(effects: pl.DataFrame, series: pl.DataFrame, prepared: Prepared) 
     # record, undefined tests); numpy's warnings about NaN arithmetic there are expected,
     # and every such row is reported through its own issue code.
     with np.errstate(invalid="ignore", divide="ignore"):
-        from attribution.timing import evaluate_timing
-
         return evaluate_timing(
             effects, series, shared.index_returns, shared.riskless, options=prepared.timing
         )
@@ -533,7 +534,7 @@ def _stable_by_portfolio(*frames: pl.DataFrame | None) -> pl.DataFrame:
 
 
 def _merge_with_previous(
-    part: Any,
+    part: ShardResult | None,
     previous: PreviousRun,
     kept: list[str],
     prepared: Prepared,
