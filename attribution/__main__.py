@@ -1,5 +1,5 @@
 """``python -m attribution`` is the same as the ``tiltaudit`` command."""
 
-from attribution.cli import main
+from attribution.entry import main
 
-main(prog_name="tiltaudit")
+main()

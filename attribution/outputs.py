@@ -291,6 +291,9 @@ class ParquetAppender:
                 table.schema,
                 compression=EFFECTS_COMPRESSION,
                 use_dictionary=dictionary,
+                # Min/max statistics on the keys only: they let readers skip row groups by
+                # portfolio and period; on the float columns they cost CPU and prune nothing.
+                write_statistics=dictionary,
                 # Text columns may arrive dictionary-encoded; without the stored Arrow schema
                 # every reader sees them as plain strings.
                 store_schema=False,

@@ -13,7 +13,7 @@ from __future__ import annotations
 import dataclasses
 import time
 from collections.abc import Callable, Iterator, Mapping
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -317,24 +317,11 @@ def run_roster(
     fingerprint_parts: list[pl.DataFrame] = []
     money_parts: list[pl.DataFrame] = []
     n_reused = 0
-    for start, shard, tables in _read_ahead(readers, ids, shard_size, options, timings):
-        clock = time.perf_counter()
-        kept = []
-        if fingerprints or previous is not None:
-            found_prints = portfolio_fingerprints(tables, shard)
-            fingerprint_parts.append(found_prints)
-            kept = previous.unchanged(found_prints) if previous is not None else []
-        if kept:
-            tables = {
-                name: None if frame is None else frame.filter(~pl.col(PID).is_in(kept))
-                for name, frame in tables.items()
-            }
-            n_reused += len(kept)
-        timings["read_and_validate"] += time.perf_counter() - clock
-        clock = time.perf_counter()
-        new = tables["holdings"] is not None and tables["holdings"].height > 0
-        part = run_shard(tables, shared.calendar, shared.index_returns, options) if new else None
-        timings["decompose"] += time.perf_counter() - clock
+
+    def finish(start: int, kept: list[str], part: ShardResult | None) -> None:
+        """Everything after the decomposition of one shard: summaries, timing tests, the
+        merge with a previous run, the sinks. Runs on the finishing thread, one shard at a
+        time and in shard order, while the caller decomposes the next shard."""
         if previous is None:
             assert part is not None
             clock = time.perf_counter()
@@ -364,12 +351,10 @@ def run_roster(
                     effects_sink(table)
                 else:
                     effects_parts.append(effects_frame(table))
-                timings["decompose"] += time.perf_counter() - clock
+                timings["summarise"] += time.perf_counter() - clock
                 clock = time.perf_counter()
                 shard_timing = _timing_of(timing_effects(table), part.series, prepared)
-                timings["timing_tests"] = timings.get("timing_tests", 0.0) + (
-                    time.perf_counter() - clock
-                )
+                timings["timing_tests"] += time.perf_counter() - clock
         else:
             clock = time.perf_counter()
             merged = _merge_with_previous(part, previous, kept, prepared, options, ppy)
@@ -387,9 +372,7 @@ def run_roster(
         # The timing columns of series are per portfolio: join them shard by shard.
         shard_series = shard_series.select(SERIES_ORDER)
         if shard_timing is not None:
-            shard_series = shard_series.join(
-                shard_timing.series_extra, on=[PID, "period_end"], how="left"
-            )
+            shard_series = _attach_series_extra(shard_series, shard_timing.series_extra)
             timing_parts.append(
                 dataclasses.replace(shard_timing, series_extra=shard_timing.series_extra.clear())
             )
@@ -401,6 +384,45 @@ def run_roster(
             series_parts.append(shard_series)
         if progress is not None:
             progress(min(start + shard_size, len(ids)), len(ids))
+
+    if prepared.timing is not None:
+        timings["timing_tests"] = 0.0
+    # Two stages overlap: this thread decomposes shard i while the finishing thread works on
+    # shard i - 1 (numpy, polars and pyarrow release the GIL in their loops). The finishing
+    # thread takes one shard at a time in order, so every table is appended in shard order.
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="shard-finish") as finisher:
+        finishing: Future[None] | None = None
+        if prepared.timing is not None:
+            # Loading the timing layer (scipy.special and friends, about 0.3 s) overlaps with
+            # the first shard's decomposition instead of delaying its finishing.
+            finishing = finisher.submit(_load_timing_layer)
+        for start, shard, tables in _read_ahead(readers, ids, shard_size, options, timings):
+            clock = time.perf_counter()
+            kept = []
+            if fingerprints or previous is not None:
+                found_prints = portfolio_fingerprints(tables, shard)
+                fingerprint_parts.append(found_prints)
+                kept = previous.unchanged(found_prints) if previous is not None else []
+            if kept:
+                tables = {
+                    name: None if frame is None else frame.filter(~pl.col(PID).is_in(kept))
+                    for name, frame in tables.items()
+                }
+                n_reused += len(kept)
+            timings["read_and_validate"] += time.perf_counter() - clock
+            clock = time.perf_counter()
+            new = tables["holdings"] is not None and tables["holdings"].height > 0
+            part = (
+                run_shard(tables, shared.calendar, shared.index_returns, options) if new else None
+            )
+            del tables
+            timings["decompose"] += time.perf_counter() - clock
+            if finishing is not None:
+                finishing.result()
+            finishing = finisher.submit(finish, start, kept, part)
+            del part
+        if finishing is not None:
+            finishing.result()
     effects = (
         pl.concat(effects_parts)
         if effects_parts
@@ -449,6 +471,20 @@ def run_roster(
         extra_tables=extra,
         notes=notes,
     )
+
+
+def _load_timing_layer() -> None:
+    import attribution.timing  # noqa: F401
+
+
+def _attach_series_extra(series: pl.DataFrame, extra: pl.DataFrame) -> pl.DataFrame:
+    """``series`` left-joined with the timing layer's per-period columns on portfolio and
+    period. Both come sorted by portfolio and period, so when their keys are equal row for
+    row the columns are put side by side without hashing the text keys."""
+    keys = [PID, "period_end"]
+    if extra.height == series.height and series.select(keys).equals(extra.select(keys)):
+        return series.hstack(extra.drop(keys))
+    return series.join(extra, on=keys, how="left")
 
 
 def _read_ahead(

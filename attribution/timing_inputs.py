@@ -132,6 +132,31 @@ class DecisionArrays:
     weight_change: FloatArray
 
 
+def book_positions(values: pl.Series, book: list[str]) -> np.ndarray:
+    """Position of each text of ``values`` in ``book``, which must hold every one of them.
+
+    An Enum column (as :func:`attribution.decompose.timing_effects` gives) is translated
+    through its categories: one lookup per category, then one gather over the rows, instead
+    of reading every row's text.
+    """
+    dtype = values.dtype
+    if isinstance(dtype, pl.Enum):
+        categories = dtype.categories.to_list()
+        physical = values.to_physical().to_numpy()
+        if categories == book:
+            return physical
+        where = {text: i for i, text in enumerate(book)}
+        lookup = np.array([where.get(text, -1) for text in categories], dtype=np.int64)
+        positions = lookup[physical]
+        # A category outside the book is harmless unless a row uses it.
+        if lookup.min(initial=0) < 0 and (positions < 0).any():
+            missing = sorted({categories[i] for i in np.unique(physical[positions < 0])})
+            msg = f"timing: {values.name} values {missing[:5]} are not in {book[:5]}..."
+            raise ValueError(msg)
+        return positions
+    return values.cast(pl.Enum(book)).to_physical().to_numpy()
+
+
 def build_roster_arrays(
     effects: pl.DataFrame,
     series: pl.DataFrame,
@@ -187,14 +212,9 @@ def build_roster_arrays(
         raise ValueError(msg)
 
     # Effects rows -> (row, class). Classes a portfolio never mentions keep weight 0.
-    eff_codes = effects.select(
-        pl.col("portfolio_id").cast(pl.Enum(portfolio_ids)).to_physical(),
-        pl.col("asset_class").cast(pl.Enum(classes)).to_physical(),
-        pl.col("period_end").cast(pl.Int32),
-    )
-    e_port = eff_codes.get_column("portfolio_id").to_numpy()
-    e_class = eff_codes.get_column("asset_class").to_numpy()
-    e_days = eff_codes.get_column("period_end").to_numpy()
+    e_port = book_positions(effects.get_column("portfolio_id"), portfolio_ids)
+    e_class = book_positions(effects.get_column("asset_class"), classes)
+    e_days = effects.get_column("period_end").cast(pl.Int32).to_numpy()
     n_rows = row_portfolio.size
     # Sorted and complete (every class in every period, rows in series order): then the
     # effects columns reshape to (rows, K) without a scatter. Checked on the integer codes.

@@ -142,24 +142,38 @@ def timed_once(cmd: list[str]) -> tuple[float, float, int]:
     return wall, int(rss.group(1)) / 2**20, proc.returncode
 
 
-def measure(cmd: list[str], *, repeat: int, out: Path, keep: bool) -> Measurement:
-    """Time ``cmd`` ``repeat`` times; its output ``out`` is deleted (untimed) before each run,
-    so every run writes from scratch, and after the last one unless ``keep``."""
-    walls, peaks, code = [], [], 0
+def measure_round_robin(
+    commands: dict[str, tuple[list[str], Path]], *, repeat: int, keep: bool
+) -> dict[str, Measurement]:
+    """Time every command ``repeat`` times, taking them in turn (round 1: each command once,
+    round 2: each again, ...), so a machine that gets faster or slower during the benchmark
+    affects every command alike and the ratios between them stay fair. Each command's output
+    is deleted (untimed) before every run, so every run writes from scratch, and after the
+    last one unless ``keep``.
+    """
+    walls: dict[str, list[float]] = {key: [] for key in commands}
+    peaks: dict[str, list[float]] = {key: [] for key in commands}
+    codes: dict[str, int] = {}
     for _ in range(repeat):
-        remove(out)
-        wall, peak, code = timed_once(cmd)
-        walls.append(round(wall, 2))
-        peaks.append(round(peak, 3))
+        for key, (cmd, out) in commands.items():
+            remove(out)
+            wall, peak, code = timed_once(cmd)
+            walls[key].append(round(wall, 2))
+            peaks[key].append(round(peak, 3))
+            codes[key] = code
     if not keep:
-        remove(out)
-    return Measurement(
-        wall_s=min(walls),
-        peak_gib=max(peaks),
-        walls_s=tuple(walls),
-        peaks_gib=tuple(peaks),
-        exit_code=code,
-    )
+        for _, out in commands.values():
+            remove(out)
+    return {
+        key: Measurement(
+            wall_s=min(walls[key]),
+            peak_gib=max(peaks[key]),
+            walls_s=tuple(walls[key]),
+            peaks_gib=tuple(peaks[key]),
+            exit_code=codes[key],
+        )
+        for key in commands
+    }
 
 
 def remove(path: Path) -> None:
@@ -341,29 +355,24 @@ def print_table(n: int, rows: int, load: float, row: dict[str, Measurement]) -> 
 def bench_size(
     roster: Path, work: Path, n: int, args: argparse.Namespace
 ) -> dict[str, Measurement]:
-    """Every measurement for one roster, in a fixed order."""
-    row: dict[str, Measurement] = {}
-    keep = args.keep_outputs
+    """Every measurement for one roster (commands taken in turn, see
+    :func:`measure_round_robin`)."""
     floor_out = work / f"floor_{n}.parquet"
     floor_sql = FLOOR_SQL.format(d=roster, out=floor_out)
-    row["floor"] = measure(
-        [sys.executable, "-c", f"import duckdb; duckdb.sql({floor_sql!r})"],
-        repeat=args.repeat,
-        out=floor_out,
-        keep=keep,
-    )
+    commands: dict[str, tuple[list[str], Path]] = {
+        "floor": ([sys.executable, "-c", f"import duckdb; duckdb.sql({floor_sql!r})"], floor_out)
+    }
     runs = [("run_none", "none", False), ("run_exact", "exact", False)]
     if args.with_report:
         runs.append(("run_exact_report", "exact", True))
     for key, tests, report in runs:
         out = work / f"{key}_{n}"
-        cmd = run_command(roster, out, tests=tests, report=report)
-        row[key] = measure(cmd, repeat=args.repeat, out=out, keep=keep)
+        commands[key] = (run_command(roster, out, tests=tests, report=report), out)
     if n <= args.baseline_max:
         out = work / f"baseline_{n}"
         cmd = [sys.executable, str(BASELINE), "--roster", str(roster), "--out", str(out)]
-        row["baseline"] = measure(cmd, repeat=args.repeat, out=out, keep=keep)
-    return row
+        commands["baseline"] = (cmd, out)
+    return measure_round_robin(commands, repeat=args.repeat, keep=args.keep_outputs)
 
 
 def parse_sizes(text: str) -> list[int]:

@@ -58,7 +58,7 @@ def test_shards_and_sinks_equal_one_piece(roster, tests: str) -> None:
 
 
 def test_timing_reads_the_slim_effects_view_like_the_full_frame(roster) -> None:
-    # The runner hands the timing layer a slim view with Categorical ids and classes; the
+    # The runner hands the timing layer a slim view with Enum ids and classes; the
     # results must equal those from the plain effects frame with text columns.
     import numpy as np
 
