@@ -16,6 +16,7 @@ import tempfile
 import time
 import tomllib
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -176,7 +177,6 @@ def execute_run(
     from attribution.decompose import EFFECTS_ORDER, SERIES_ORDER
     from attribution.incremental import load_previous, shared_fingerprint, with_incremental_note
     from attribution.outputs import ParquetAppender, StagedOutput, output_lock
-    from attribution.report import build_report
 
     if engine == "spark" and incremental:
         msg = (
@@ -185,6 +185,11 @@ def execute_run(
         )
         raise OptionError(msg)
     prepared = prepare(sources, options)  # bad input fails here, before anything is written
+    # The inputs' SHA-256 for the manifest is computed on its own thread while the roster
+    # runs (hashlib releases the GIL), not after it.
+    hasher = ThreadPoolExecutor(max_workers=1, thread_name_prefix="input-hashes")
+    hashes = hasher.submit(file_hashes, sources)
+    hasher.shutdown(wait=False)
     with output_lock(out_dir), StagedOutput(out_dir) as staged:
         previous, reason = None, ""
         if incremental:
@@ -228,12 +233,14 @@ def execute_run(
         counts = {name: frame.height for name, frame in tables.items()}
         counts["effects"] = effects.rows
         counts["series"] = series.rows
-        manifest = build_manifest(result, sources, hashes=file_hashes(sources))
+        manifest = build_manifest(result, sources, hashes=hashes.result())
         timings = manifest["timings_seconds"]
         clock = time.perf_counter()
         timings["write_started"] = clock - started
         extra_files = {}
         if write_report:
+            from attribution.report import build_report
+
             streamed = {name: pl.scan_parquet(staged.path(f"{name}.parquet")) for name in STREAMED}
             report = build_report({**tables, **streamed}, manifest=manifest)
             extra_files["report.html"] = report.encode("utf-8")

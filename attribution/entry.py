@@ -20,7 +20,9 @@ not change its caller's process.
 
 from __future__ import annotations
 
+import contextlib
 import os
+import sys
 
 PROCESS_SETTINGS = {
     "NUMPY_MADVISE_HUGEPAGE": "0",
@@ -36,8 +38,30 @@ def apply_process_settings() -> None:
 
 
 def main() -> None:
-    """``tiltaudit``: apply the process settings, then run the command line."""
+    """``tiltaudit``: apply the process settings, run the command line, and exit.
+
+    The exit skips the interpreter's teardown (``os._exit`` after flushing the standard
+    streams): by then every output is written, closed and renamed into place, and freeing a
+    large run's objects one by one only delays the exit (about 0.3 s at 5,000 portfolios).
+    A run that started Spark exits normally, so the Spark session's own exit handlers run.
+    """
     apply_process_settings()
     from attribution.cli import main as cli_main
 
-    cli_main(prog_name="tiltaudit")
+    try:
+        cli_main(prog_name="tiltaudit")
+        code: object = 0
+    except SystemExit as finished:
+        code = finished.code
+    if "pyspark" in sys.modules:
+        sys.exit(code)
+    if not isinstance(code, int):
+        # sys.exit("message") prints the message and exits with 1; keep that behaviour.
+        if code is not None:
+            print(code, file=sys.stderr)
+        code = 0 if code is None else 1
+    for stream in (sys.stdout, sys.stderr):
+        # A reader that went away (| head) or a closed stream: nothing left to flush to.
+        with contextlib.suppress(OSError, ValueError):
+            stream.flush()
+    os._exit(code)

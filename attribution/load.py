@@ -208,6 +208,7 @@ class TableReader:
             )
             raise SchemaError(msg)
         self._lazy = self._lazy.select(list(spec))
+        self._known_ids: pl.Series | None = None
 
     def _collect(self, lazy: pl.LazyFrame) -> pl.DataFrame:
         try:
@@ -233,7 +234,19 @@ class TableReader:
                 "name its portfolio."
             )
             raise SchemaError(msg)
-        return ids.sort()
+        self._known_ids = ids.sort()
+        return self._known_ids
+
+    def _range_is_enough(self, wanted: pl.Series) -> bool:
+        """Whether every id of this table between the shard's least and greatest id is one of
+        the shard's ids (known once :meth:`portfolio_ids` has run): then the range filter
+        alone selects the shard, without looking each row's id up in the shard's set."""
+        known = self._known_ids
+        if known is None:
+            return False
+        lo = known.search_sorted(wanted.min(), side="left")
+        hi = known.search_sorted(wanted.max(), side="right")
+        return bool(known.slice(lo, hi - lo).is_in(wanted.implode()).all())
 
     def read_all(self) -> pl.DataFrame:
         """The whole table, typed."""
@@ -249,6 +262,8 @@ class TableReader:
         pid = pl.col("portfolio_id").cast(pl.String)
         if wanted.len() == 0:
             lazy = self._lazy.filter(pid.is_in(wanted.implode()))
+        elif self._range_is_enough(wanted):
+            lazy = self._lazy.filter((pid >= wanted.min()) & (pid <= wanted.max()))
         else:
             lazy = self._lazy.filter(
                 (pid >= wanted.min()) & (pid <= wanted.max()) & pid.is_in(wanted.implode())

@@ -92,3 +92,27 @@ def test_attach_series_extra_joins_when_the_keys_do_not_line_up(change: str) -> 
     extra = extra.reverse() if change == "reordered" else extra.head(3)
     joined = series.join(extra, on=["portfolio_id", "period_end"], how="left")
     assert_frame_equal(_attach_series_extra(series, extra), joined)
+
+
+@pytest.mark.parametrize("ids_known", [True, False], ids=["ids-known", "ids-unknown"])
+def test_shard_read_keeps_only_the_shard_when_an_orphan_sits_inside_its_range(
+    tmp_path, ids_known: bool
+) -> None:
+    # "b2" lies between "b1" and "b3" but is not in the shard (a portfolio without holdings):
+    # the range filter alone would let it in; the reader must fall back to the id set.
+    from attribution.load import TableReader
+
+    path = tmp_path / "segment_returns.parquet"
+    pl.DataFrame(
+        {
+            "portfolio_id": ["a", "b1", "b2", "b3", "c"],
+            "period_end": [date(2024, 1, 31)] * 5,
+            "asset_class": ["x"] * 5,
+            "return": [0.1, 0.2, 0.3, 0.4, 0.5],
+        }
+    ).write_parquet(path)
+    reader = TableReader(path, "segment_returns")
+    if ids_known:
+        assert reader.portfolio_ids().to_list() == ["a", "b1", "b2", "b3", "c"]
+    assert reader.read_shard(["b1", "b3"])["portfolio_id"].to_list() == ["b1", "b3"]
+    assert reader.read_shard(["b1", "b2", "b3"])["return"].to_list() == [0.2, 0.3, 0.4]
