@@ -100,7 +100,9 @@ def _portfolio_codes(
         return ids.cast(pl.Enum(list(book))).to_physical().cast(pl.Int64).rechunk()
     starts = run_starts(ids) if starts is None else starts
     heads = ids.filter(pl.Series(starts)).cast(pl.Enum(list(book))).to_physical()
-    return pl.Series(heads.cast(pl.Int64).to_numpy()[np.cumsum(starts) - 1], dtype=pl.Int64)
+    first = np.flatnonzero(starts)
+    lengths = np.diff(first, append=len(starts))
+    return pl.Series(np.repeat(heads.cast(pl.Int64).to_numpy(), lengths), dtype=pl.Int64)
 
 
 def encode(
@@ -143,6 +145,26 @@ def encode(
 
 def _strictly_increasing(key: np.ndarray) -> bool:
     return bool(np.all(key[1:] > key[:-1]))
+
+
+def _held_cells(holding: np.ndarray, n_k: int) -> np.ndarray:
+    """(P, T, K) weights to fill: 0 in held periods (classes not listed hold nothing), NaN
+    elsewhere."""
+    held = np.full((*holding.shape, n_k), np.nan)
+    held[holding] = 0.0
+    return held
+
+
+def _is_every_position(target: np.ndarray, size: int) -> bool:
+    """Whether ``target`` is exactly 0, 1, …, size − 1: then a scatter into an array of
+    ``size`` cells is a reshape (strictly increasing from 0 with ``size`` entries)."""
+    return (
+        len(target) == size
+        and size > 0
+        and int(target[0]) == 0
+        and int(target[-1]) == size - 1
+        and _strictly_increasing(target)
+    )
 
 
 def duplicate_mask(frame: pl.DataFrame, n_t: int, n_k: int, *, with_class: bool) -> np.ndarray:
@@ -210,16 +232,21 @@ def build_panel(
     holding = np.zeros((n_p, n_t), dtype=bool)
     holding.reshape(-1)[cell] = True
     holding &= active
-    held = np.full((n_p, n_t, n_k), np.nan)
-    held[holding] = 0.0
+    shape = (n_p, n_t, n_k)
     keep = holding.reshape(-1)[cell]
     if keep.all():
         target = cell * n_k
         target += hk
         share = sums[cell].astype(np.float64, copy=False)  # bincount of nothing is int
         np.divide(hw, share, out=share)
-        held.reshape(-1)[target] = share
+        if _is_every_position(target, n_p * n_t * n_k):
+            # Every cell once, in order (a complete file sorted by portfolio, date, class).
+            held = share.reshape(shape)
+        else:
+            held = _held_cells(holding, n_k)
+            held.reshape(-1)[target] = share
     else:
+        held = _held_cells(holding, n_k)
         kept = cell[keep]
         held.reshape(-1)[kept * n_k + hk[keep]] = hw[keep] / sums[kept]
 
@@ -247,7 +274,11 @@ def build_panel(
         flat += segments["_t"].to_numpy()
         flat *= n_k
         flat += segments["_k"].to_numpy()
-        segment.reshape(-1)[flat] = segments["return"].to_numpy()
+        values = segments["return"].to_numpy()
+        if _is_every_position(flat, segment.size):
+            segment = np.array(values, dtype=np.float64).reshape(segment.shape)
+        else:
+            segment.reshape(-1)[flat] = values
         has_segments[sp] = True
     rep = np.full((n_p, n_t), np.nan)
     has_reported = np.zeros(n_p, dtype=bool)

@@ -22,6 +22,12 @@ import numpy as np
 import polars as pl
 import pyarrow as pa
 
+# Imported here, on the main thread, before any shard thread starts: importing it
+# initialises Arrow's compute functions, which the Parquet writer's dictionary columns call
+# ("unique"). Left to the writer threads, the first import raced with a write under way and
+# intermittently failed with "No function registered with name: unique".
+import pyarrow.compute
+
 from attribution.calendar import Calendar, align_dates, build_calendar
 from attribution.decompose import (
     EFFECTS_ORDER,
