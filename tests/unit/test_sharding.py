@@ -138,3 +138,28 @@ def test_arrow_compute_is_loaded_before_any_shard_thread_writes() -> None:
     code = "import sys, attribution.runner; print('pyarrow.compute' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "True"
+
+
+@pytest.mark.parametrize("stage", ["finishing", "decomposing"])
+def test_an_error_in_either_stage_of_the_pipeline_reaches_the_caller(
+    roster, monkeypatch, stage: str
+) -> None:
+    # The finishing thread works on shard i - 1 while the main thread decomposes shard i: an
+    # error on either side must surface from run_roster (not hang, not be lost).
+    import attribution.runner as runner_module
+
+    calls = {"n": 0}
+    target = "summary_frame" if stage == "finishing" else "run_shard"
+    original = getattr(runner_module, target)
+
+    def failing(*args, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == 2:
+            raise RuntimeError(f"planted failure in the {stage} stage")
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(runner_module, target, failing)
+    options = RunOptions.build(tests="exact")
+    with pytest.raises(RuntimeError, match=f"planted failure in the {stage} stage"):
+        run_roster(prepare(roster, options), options, shard_size=7)
+    assert calls["n"] == 2
